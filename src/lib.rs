@@ -6,7 +6,9 @@
 //! thin shell around it. See DEVELOPERS.md for the architecture map.
 #![forbid(unsafe_code)]
 
+pub mod app;
 pub mod config;
 pub mod demo;
 pub mod engine;
 pub mod output;
+pub mod runtime;

@@ -1,1 +1,148 @@
-fn main() {}
+//! The `scrim` binary: parses the command line, runs a command from [`scrim::app`], and
+//! maps its error to the exit code of the contract (0 ok, 1 other, 2 bad config or
+//! arguments, 3 budget cannot cover the plan).
+
+use std::path::PathBuf;
+use std::process::ExitCode;
+
+use clap::{Parser, Subcommand};
+use scrim::app::{self, AppError, KeySource};
+
+#[derive(Parser)]
+#[command(name = "scrim", version, about = "Differentially private continual releases from event feeds")]
+struct Cli {
+    #[command(subcommand)]
+    command: Command,
+}
+
+#[derive(Subcommand)]
+enum Command {
+    /// Generate the invented Quillhaven feed, run it through the pipeline and print a summary.
+    Demo {
+        /// Reproducible noise (and feed) from this seed; releases are marked `seeded`.
+        #[arg(long)]
+        seed: Option<u64>,
+        /// Where to leave feed.jsonl and releases.jsonl.
+        #[arg(long, default_value = "scrim-demo-out")]
+        out: PathBuf,
+        /// Days of feed to generate.
+        #[arg(long, default_value_t = 7)]
+        days: u32,
+    },
+    /// Process a JSON-lines file (or `-` for stdin) by event time and write releases.
+    Replay {
+        /// Configuration file (TOML).
+        #[arg(long)]
+        config: PathBuf,
+        /// Output directory (overrides output.dir).
+        #[arg(long)]
+        out: Option<PathBuf>,
+        /// State directory (overrides state.dir).
+        #[arg(long)]
+        state: Option<PathBuf>,
+        /// Reproducible noise from this seed; releases are marked `seeded`.
+        #[arg(long)]
+        seed: Option<u64>,
+        /// Input file, or `-` for standard input.
+        input: String,
+    },
+    /// The live daemon: sources, release scheduler, HTTP, metrics. SIGTERM/SIGINT drain and exit 0.
+    Run {
+        /// Configuration file (TOML).
+        #[arg(long)]
+        config: PathBuf,
+        /// Reproducible noise from this seed. Refused unless --insecure-seed is also given:
+        /// seeded noise is predictable and gives no privacy.
+        #[arg(long)]
+        seed: Option<u64>,
+        /// Accept --seed in `run` (tests only; every release is marked `seeded`).
+        #[arg(long)]
+        insecure_seed: bool,
+    },
+    /// Show the budget plan and the expected errors before any data.
+    Plan {
+        /// Configuration file (TOML).
+        #[arg(long)]
+        config: PathBuf,
+        /// Machine-readable output.
+        #[arg(long)]
+        json: bool,
+    },
+}
+
+fn key_source(seed: Option<u64>) -> KeySource {
+    seed.map_or(KeySource::Os, KeySource::Seed)
+}
+
+fn run(cli: Cli) -> Result<(), AppError> {
+    match cli.command {
+        Command::Demo { seed, out, days } => {
+            let args = app::DemoArgs { key: key_source(seed), out, days };
+            app::demo(&args, &mut std::io::stdout().lock())?;
+            Ok(())
+        }
+        Command::Replay { config, out, state, seed, input } => {
+            let s = app::replay(&config, out.as_deref(), state.as_deref(), key_source(seed), &input)?;
+            eprintln!(
+                "scrim replay: {} lines, {} accepted, {} rejected, {} late, {} releases -> {}",
+                s.lines,
+                s.counters.accepted,
+                s.counters.rejected_total(),
+                s.counters.late,
+                s.releases,
+                s.output.display()
+            );
+            match s.halted {
+                Some(reason) => Err(AppError::Budget(reason)),
+                None => Ok(()),
+            }
+        }
+        Command::Run { config, seed, insecure_seed } => {
+            let key = match (seed, insecure_seed) {
+                (Some(_), false) => {
+                    return Err(AppError::Usage(
+                        "--seed makes the noise predictable and is refused by `run`; add --insecure-seed only for tests".to_string(),
+                    ));
+                }
+                (Some(s), true) => {
+                    eprintln!("scrim: WARNING: --insecure-seed: noise is reproducible and releases are NOT private");
+                    KeySource::Seed(s)
+                }
+                (None, _) => KeySource::Os,
+            };
+            let config = scrim::config::Config::load(&config)?;
+            app::run_daemon(config, key)
+        }
+        Command::Plan { config, json } => {
+            let config = scrim::config::Config::load(&config)?;
+            let (report, fits) = app::plan_report(&config, json)?;
+            print!("{report}");
+            if fits {
+                Ok(())
+            } else {
+                Err(AppError::Budget("the lifetime budget cannot cover one epoch".to_string()))
+            }
+        }
+    }
+}
+
+fn main() -> ExitCode {
+    let cli = match Cli::try_parse() {
+        Ok(c) => c,
+        Err(e) => {
+            let code = if e.use_stderr() { 2 } else { 0 };
+            let _ = e.print();
+            return ExitCode::from(code);
+        }
+    };
+    tracing_subscriber::fmt().with_writer(std::io::stderr).with_env_filter(
+        tracing_subscriber::EnvFilter::try_from_default_env().unwrap_or_else(|_| "warn".into()),
+    ).init();
+    match run(cli) {
+        Ok(()) => ExitCode::SUCCESS,
+        Err(e) => {
+            eprintln!("scrim: {e}");
+            ExitCode::from(e.exit_code() as u8)
+        }
+    }
+}

@@ -6,9 +6,16 @@
 //! is derived from a [`noise::NoiseKey`] handed in by the caller.
 
 pub mod accounting;
+pub mod bound;
+pub mod core;
 pub mod dd;
 pub mod event;
+pub mod ledger;
 pub mod linear;
 pub mod mechanism;
 pub mod noise;
+pub mod plan;
+pub mod release;
 pub mod time;
+
+pub use self::core::{Counters, Engine, EngineError, EngineOptions};

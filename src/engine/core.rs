@@ -1,0 +1,769 @@
+//! The engine: a deterministic state machine that takes lines or events and clock ticks
+//! and returns releases. It owns windows, bounding, aggregation, the mechanisms of the
+//! current epoch and the ledger.
+//!
+//! # Calling protocol
+//! - Feed input with [`Engine::handle_line`] (or [`Engine::handle_event`]) in any order;
+//!   windows close when the watermark (largest event time minus `allowed_lateness`) passes
+//!   their end.
+//! - In a live daemon call [`Engine::handle_tick`] with the wall clock; a window also
+//!   closes `idle_close` after its end when the feed is quiet.
+//! - At end of input (replay) call [`Engine::finish`]: every window with data closes.
+//! - After any call, drain [`Engine::poll_release`] until `None`.
+//!
+//! Nothing here reads a clock, a file or the OS random number generator: noise is derived
+//! from the [`NoiseKey`] the caller passes in (see [`crate::engine::noise`]).
+
+use std::collections::{BTreeMap, VecDeque};
+
+use crate::config::Config;
+use crate::engine::bound::Bounder;
+use crate::engine::dd::Dd;
+use crate::engine::event::{Event, LineParser, RejectReason, Schema};
+use crate::engine::ledger::{BudgetError, EpochCharge, Ledger};
+use crate::engine::linear;
+use crate::engine::mechanism::{self, ContinualMechanism, NodeAddr, NodeNoise};
+use crate::engine::noise::{self, NoiseId, NoiseKey};
+use crate::engine::plan::{ComponentPlan, ComponentRole, Plan, PlanError, PrivacyLevel, Scope, StatPlan};
+use crate::engine::release::{self, Guarantee, Release, Statistics};
+use crate::engine::time::Millis;
+
+/// Options that change what the engine keeps; none of them weakens the guarantee of
+/// what is released.
+#[derive(Clone, Debug, Default)]
+pub struct EngineOptions {
+    /// The noise key comes from a fixed seed: every release is marked `seeded: true`.
+    pub seeded: bool,
+    /// Keep exact (un-noised) aggregates and attach them to releases as `truth`, which is
+    /// never serialised. For the demo's side-by-side table and for tests only: it keeps
+    /// per-leaf exact values in memory.
+    pub danger_keep_truth: bool,
+}
+
+/// Why the engine cannot start.
+#[derive(Debug, thiserror::Error)]
+#[non_exhaustive]
+pub enum EngineError {
+    /// The configuration cannot be planned.
+    #[error(transparent)]
+    Plan(#[from] PlanError),
+    /// The parser schema is inconsistent.
+    #[error("input schema: {0}")]
+    Schema(String),
+}
+
+/// Counters an operator watches. Plain numbers; the metrics module renders them.
+#[derive(Clone, Debug, Default, PartialEq)]
+pub struct Counters {
+    /// Events accepted into an open window (before contribution bounding).
+    pub accepted: u64,
+    /// Lines rejected, by reason label.
+    pub rejected: BTreeMap<&'static str, u64>,
+    /// Events whose window had already closed.
+    pub late: u64,
+    /// Events dropped by the per-window event bound.
+    pub dropped_event_bound: u64,
+    /// Events dropped by the per-epoch window bound.
+    pub dropped_window_bound: u64,
+    /// Windows closed.
+    pub windows_closed: u64,
+    /// Windows closed without releases because the budget could not cover their epoch.
+    pub windows_suppressed: u64,
+    /// Records released, by statistic.
+    pub releases: BTreeMap<String, u64>,
+}
+
+impl Counters {
+    /// Total rejected lines.
+    pub fn rejected_total(&self) -> u64 {
+        self.rejected.values().sum()
+    }
+}
+
+/// Label of the engine-level rejection for an event too far ahead of the stream.
+pub const REJECT_TIME_JUMP: &str = "time_jump";
+
+/// Mechanisms of one epoch for one statistic: `[component][group]`.
+#[derive(Debug)]
+struct StatSeries {
+    mechs: Vec<Vec<Box<dyn ContinualMechanism>>>,
+    /// Exact leaves `[component][group][leaf]` when keeping truth.
+    truth: Option<Vec<Vec<Vec<Vec<i128>>>>>,
+}
+
+#[derive(Debug)]
+struct EpochState {
+    charge: EpochCharge,
+    series: Vec<StatSeries>,
+}
+
+/// Per-window exact aggregates: `[stat][component]` → flat `groups × dim` vector.
+#[derive(Debug, Clone)]
+struct WindowAgg {
+    values: Vec<Vec<Vec<i128>>>,
+}
+
+/// Noise for one series, derived from the key and the node's identity, so the same node
+/// always gets the same noise (a restart can never draw a second, independent copy).
+struct KeyedNoise<'a> {
+    key: &'a NoiseKey,
+    stat: &'a str,
+    component: u8,
+    group: u32,
+    epoch: u64,
+    sigma2: u128,
+}
+
+impl NodeNoise for KeyedNoise<'_> {
+    fn fill(&mut self, addr: NodeAddr, out: &mut [i128]) {
+        let id = NoiseId {
+            stat: self.stat,
+            component: self.component,
+            group: self.group,
+            epoch: self.epoch,
+            level: addr.level,
+            index: addr.index,
+            coord: 0,
+        };
+        let mut rng = self.key.rng_for(&id);
+        for o in out.iter_mut() {
+            *o = noise::discrete_gaussian(&mut rng, self.sigma2, 1);
+        }
+    }
+}
+
+/// The scrim engine.
+#[derive(Debug)]
+pub struct Engine {
+    plan: Plan,
+    parser: LineParser,
+    key: NoiseKey,
+    opts: EngineOptions,
+    window_ms: i64,
+    lateness_ms: i64,
+    idle_close_ms: i64,
+    /// Absolute window index (time / length) of epoch 0's first leaf.
+    origin: Option<i64>,
+    /// Next absolute window index to close.
+    next_close: i64,
+    max_event_time: Option<Millis>,
+    open: BTreeMap<i64, WindowAgg>,
+    bounder: Option<Bounder>,
+    /// Per stat: for each stat group field, parser-domain index → stat key index.
+    key_maps: Vec<Vec<Vec<Option<u32>>>>,
+    epoch: Option<EpochState>,
+    ledger: Ledger,
+    halted: Option<BudgetError>,
+    counters: Counters,
+    outbox: VecDeque<Release>,
+    next_seq: u64,
+    guarantee: Guarantee,
+}
+
+impl Engine {
+    /// Builds an engine for `config` with noise derived from `key`.
+    pub fn new(config: &Config, key: NoiseKey, opts: EngineOptions) -> Result<Engine, EngineError> {
+        let plan = Plan::new(config)?;
+        let schema = Schema {
+            time_field: config.input.time_field.clone(),
+            unit_field: config.input.unit_field.clone(),
+            categories: plan.categories.clone(),
+            numbers: plan.numbers.clone(),
+            max_line_bytes: config.input.max_line_bytes,
+        };
+        let parser = LineParser::new(schema).map_err(|e| EngineError::Schema(e.to_string()))?;
+        let key_maps = plan
+            .stats
+            .iter()
+            .map(|s| {
+                s.groups
+                    .fields
+                    .iter()
+                    .map(|(_, keys, cat)| {
+                        plan.categories[*cat]
+                            .1
+                            .iter()
+                            .map(|d| keys.iter().position(|k| k == d).map(|i| i as u32))
+                            .collect()
+                    })
+                    .collect()
+            })
+            .collect();
+        let (bounder, lifetime, unit) = match &plan.level {
+            PrivacyLevel::Event => (None, None, None),
+            PrivacyLevel::Unit { field, lifetime_rho, max_events_per_window, max_windows_per_epoch } => (
+                Some(Bounder::new(*max_events_per_window, *max_windows_per_epoch)),
+                Some(*lifetime_rho),
+                Some(field.clone()),
+            ),
+        };
+        let guarantee = Guarantee {
+            level: if unit.is_some() { "unit" } else { "event" }.to_string(),
+            unit,
+            rho: plan.rho_per_epoch,
+            lifetime_rho: lifetime,
+            epsilon: plan.epsilon_per_epoch(),
+            delta: plan.delta,
+            mechanism: plan.mechanism.as_str().to_string(),
+        };
+        Ok(Engine {
+            ledger: Ledger::new(plan.rho_per_epoch, lifetime),
+            parser,
+            key,
+            opts,
+            window_ms: config.window.length.0,
+            lateness_ms: config.window.allowed_lateness.0,
+            idle_close_ms: config.window.idle_close.0,
+            origin: None,
+            next_close: 0,
+            max_event_time: None,
+            open: BTreeMap::new(),
+            bounder,
+            key_maps,
+            epoch: None,
+            halted: None,
+            counters: Counters::default(),
+            outbox: VecDeque::new(),
+            next_seq: 0,
+            guarantee,
+            plan,
+        })
+    }
+
+    /// The plan the engine runs.
+    pub fn plan(&self) -> &Plan {
+        &self.plan
+    }
+
+    /// Counters so far.
+    pub fn counters(&self) -> &Counters {
+        &self.counters
+    }
+
+    /// The ledger.
+    pub fn ledger(&self) -> &Ledger {
+        &self.ledger
+    }
+
+    /// Set when the budget could not cover an epoch: nothing more is released.
+    pub fn halted(&self) -> Option<&BudgetError> {
+        self.halted.as_ref()
+    }
+
+    /// Bounding state, for memory reporting (unit level only).
+    pub fn bounder(&self) -> Option<&Bounder> {
+        self.bounder.as_ref()
+    }
+
+    /// Number of windows currently open (with at least one event).
+    pub fn open_windows(&self) -> usize {
+        match &self.bounder {
+            Some(_) => self.max_event_time.map_or(0, |t| (self.window_of(t) - self.next_close + 1).max(0) as usize),
+            None => self.open.len(),
+        }
+    }
+
+    /// `(epoch, windows closed in it)` of the next window to close, once the stream started.
+    pub fn epoch_position(&self) -> Option<(u64, u32)> {
+        let origin = self.origin?;
+        let rel = (self.next_close - origin).max(0) as u64;
+        let t = u64::from(self.plan.epoch_windows);
+        Some((rel / t, (rel % t) as u32))
+    }
+
+    /// End of the last closed window, if any.
+    pub fn last_closed_end(&self) -> Option<Millis> {
+        let origin = self.origin?;
+        (self.next_close > origin).then(|| Millis(self.next_close * self.window_ms))
+    }
+
+    /// Event-time watermark: largest event time minus the allowed lateness.
+    pub fn watermark(&self) -> Option<Millis> {
+        self.max_event_time.map(|t| Millis(t.0.saturating_sub(self.lateness_ms)))
+    }
+
+    /// Parses and handles one input line (without its newline).
+    pub fn handle_line(&mut self, line: &[u8]) {
+        let key = &self.key;
+        let hash = |raw: &[u8]| key.hash64("unit", raw);
+        match self.parser.parse(line, &hash) {
+            Ok(ev) => self.handle_event(ev),
+            Err(rej) => self.reject(rej.reason.label()),
+        }
+    }
+
+    fn reject(&mut self, label: &'static str) {
+        *self.counters.rejected.entry(label).or_insert(0) += 1;
+    }
+
+    /// Counts a rejection decided outside the engine (e.g. the runtime's I/O layer).
+    pub fn count_rejection(&mut self, reason: RejectReason) {
+        self.reject(reason.label());
+    }
+
+    fn window_of(&self, t: Millis) -> i64 {
+        t.0.div_euclid(self.window_ms)
+    }
+
+    /// Handles one parsed event.
+    pub fn handle_event(&mut self, ev: Event) {
+        let w = self.window_of(ev.time);
+        let origin = *self.origin.get_or_insert(w);
+        if self.next_close < origin {
+            self.next_close = origin;
+        }
+        if w < self.next_close {
+            self.counters.late += 1;
+            return;
+        }
+        // An event more than one epoch (plus the lateness) ahead of the oldest open window
+        // would force closing a whole epoch of empty windows: almost always a broken clock.
+        let horizon = i64::from(self.plan.epoch_windows) + self.lateness_ms / self.window_ms + 1;
+        if w - self.next_close > horizon {
+            self.reject(REJECT_TIME_JUMP);
+            return;
+        }
+        self.counters.accepted += 1;
+        self.max_event_time = Some(self.max_event_time.map_or(ev.time, |m| m.max(ev.time)));
+        match (&mut self.bounder, ev.unit) {
+            (Some(b), Some(unit)) => {
+                let prio = event_priority(&self.key, unit, &ev);
+                self.counters.dropped_event_bound += b.offer(w, unit, prio, ev);
+            }
+            _ => {
+                let plan = &self.plan;
+                let key_maps = &self.key_maps;
+                let agg = self.open.entry(w).or_insert_with(|| WindowAgg::empty(plan));
+                agg.add(plan, key_maps, &ev);
+            }
+        }
+        self.advance_watermark();
+    }
+
+    fn advance_watermark(&mut self) {
+        let Some(max_t) = self.max_event_time else { return };
+        let watermark = max_t.0.saturating_sub(self.lateness_ms);
+        while (self.next_close + 1) * self.window_ms <= watermark {
+            self.close_next();
+        }
+    }
+
+    /// Wall-clock tick (live daemon): closes windows whose end is `idle_close` in the past.
+    pub fn handle_tick(&mut self, now: Millis) {
+        if self.origin.is_none() {
+            return;
+        }
+        while (self.next_close + 1) * self.window_ms + self.idle_close_ms <= now.0
+            && self.has_data_at_or_after(self.next_close)
+        {
+            self.close_next();
+        }
+    }
+
+    fn has_data_at_or_after(&self, w: i64) -> bool {
+        self.max_event_time.is_some_and(|t| self.window_of(t) >= w)
+    }
+
+    /// End of input: closes every window up to the last one that received an event.
+    pub fn finish(&mut self) {
+        if let Some(t) = self.max_event_time {
+            let last = self.window_of(t);
+            while self.next_close <= last {
+                self.close_next();
+            }
+        }
+    }
+
+    /// The earliest wall-clock time at which [`Engine::handle_tick`] would close a window.
+    pub fn poll_timeout(&self) -> Option<Millis> {
+        self.has_data_at_or_after(self.next_close)
+            .then(|| Millis((self.next_close + 1) * self.window_ms + self.idle_close_ms))
+    }
+
+    /// Releases waiting in the outbox.
+    pub fn pending_releases(&self) -> usize {
+        self.outbox.len()
+    }
+
+    /// Next release, in seq order.
+    pub fn poll_release(&mut self) -> Option<Release> {
+        self.outbox.pop_front()
+    }
+
+    fn close_next(&mut self) {
+        let w = self.next_close;
+        self.next_close += 1;
+        self.counters.windows_closed += 1;
+        let origin = self.origin.unwrap_or(w);
+        let t = u64::from(self.plan.epoch_windows);
+        let rel = (w - origin) as u64;
+        let epoch = rel / t;
+        let leaf = (rel % t) as u32;
+
+        let mut agg = self.open.remove(&w).unwrap_or_else(|| WindowAgg::empty(&self.plan));
+        if let Some(b) = &mut self.bounder {
+            let closed = b.close(w, epoch);
+            self.counters.dropped_window_bound += closed.dropped_by_window_cap;
+            for ev in &closed.kept {
+                agg.add(&self.plan, &self.key_maps, ev);
+            }
+        }
+
+        if self.epoch.as_ref().is_none_or(|e| e.charge.epoch() != epoch) {
+            self.epoch = None;
+            if self.halted.is_some() {
+                self.counters.windows_suppressed += 1;
+                return;
+            }
+            match self.ledger.charge_epoch(epoch) {
+                Ok(charge) => self.epoch = Some(self.new_epoch(charge)),
+                Err(e) => {
+                    tracing::error!(epoch, reason = %e, "budget cannot cover the epoch; releases stop");
+                    self.halted = Some(e);
+                    self.counters.windows_suppressed += 1;
+                    return;
+                }
+            }
+        }
+        self.push_and_release(agg, w, epoch, leaf);
+    }
+
+    fn new_epoch(&self, charge: EpochCharge) -> EpochState {
+        let horizon = self.plan.epoch_windows;
+        let series = self
+            .plan
+            .stats
+            .iter()
+            .map(|s| {
+                let max_trailing = s
+                    .scopes
+                    .iter()
+                    .filter_map(|sc| if let Scope::Trailing(n) = sc { Some(*n) } else { None })
+                    .max()
+                    .unwrap_or(1);
+                let n_groups = s.groups.len();
+                StatSeries {
+                    mechs: s
+                        .components
+                        .iter()
+                        .map(|c| {
+                            (0..n_groups)
+                                .map(|_| mechanism::new_mechanism(self.plan.mechanism, horizon, c.dim, max_trailing, c.node_var))
+                                .collect()
+                        })
+                        .collect(),
+                    truth: self
+                        .opts
+                        .danger_keep_truth
+                        .then(|| s.components.iter().map(|_| vec![Vec::new(); n_groups]).collect()),
+                }
+            })
+            .collect();
+        EpochState { charge, series }
+    }
+
+    fn push_and_release(&mut self, agg: WindowAgg, w: i64, epoch: u64, leaf: u32) {
+        let Some(state) = self.epoch.as_mut() else { return };
+        // 1. Every node that completes with this leaf gets its noise (drawn once, by identity).
+        for (si, s) in self.plan.stats.iter().enumerate() {
+            for (ci, c) in s.components.iter().enumerate() {
+                for g in 0..s.groups.len() {
+                    let x = &agg.values[si][ci][g * c.dim..(g + 1) * c.dim];
+                    let mut nz = KeyedNoise {
+                        key: &self.key,
+                        stat: &s.name,
+                        component: ci as u8,
+                        group: g as u32,
+                        epoch,
+                        sigma2: c.sigma2,
+                    };
+                    state.series[si].mechs[ci][g].push_leaf(x, &mut nz);
+                    if let Some(truth) = &mut state.series[si].truth {
+                        truth[ci][g].push(x.to_vec());
+                    }
+                }
+            }
+        }
+        // 2. Estimates for every scope, as records.
+        let origin = self.origin.unwrap_or(w);
+        let epoch_start = origin + (epoch * u64::from(self.plan.epoch_windows)) as i64;
+        for (si, s) in self.plan.stats.iter().enumerate() {
+            for g in 0..s.groups.len() {
+                for scope in &s.scopes {
+                    let range = scope.range(leaf);
+                    let start = Millis((epoch_start + i64::from(range.first)) * self.window_ms);
+                    let end = Millis((epoch_start + i64::from(range.last) + 1) * self.window_ms);
+                    let series = &state.series[si];
+                    let est: Vec<(Vec<Dd>, f64)> = series
+                        .mechs
+                        .iter()
+                        .map(|per_group| {
+                            let e = per_group[g].estimate(range);
+                            (e.value, e.variance)
+                        })
+                        .collect();
+                    let truth: Option<Vec<Vec<Dd>>> = series.truth.as_ref().map(|t| {
+                        t.iter()
+                            .zip(&s.components)
+                            .map(|(per_group, c)| {
+                                let mut sum = vec![Dd::ZERO; c.dim];
+                                for leafv in &per_group[g][range.first as usize..=range.last as usize] {
+                                    for (acc, v) in sum.iter_mut().zip(leafv) {
+                                        *acc = *acc + Dd::from_i128(*v);
+                                    }
+                                }
+                                sum
+                            })
+                            .collect()
+                    });
+                    let mut rec = render(s, &est, truth.as_deref(), &self.key, epoch, leaf, g, scope);
+                    rec.seq = self.next_seq;
+                    self.next_seq += 1;
+                    rec.group = s.groups.keys_of(g).into_iter().map(|(f, k)| (f.to_string(), k.to_string())).collect();
+                    rec.window_start = start.to_rfc3339();
+                    rec.window_end = end.to_rfc3339();
+                    rec.epoch = epoch;
+                    rec.leaf = leaf;
+                    rec.guarantee = self.guarantee.clone();
+                    rec.seeded = self.opts.seeded;
+                    *self.counters.releases.entry(s.name.clone()).or_insert(0) += 1;
+                    self.outbox.push_back(rec);
+                }
+            }
+        }
+    }
+}
+
+/// Priority of an event for bottom-k bounding: a keyed hash of the unit and the event's
+/// content, independent of arrival order and of other units (see `bound`).
+fn event_priority(key: &NoiseKey, unit: u64, ev: &Event) -> u64 {
+    let mut buf = Vec::with_capacity(16 + 4 * ev.categories.len() + 8 * ev.numbers.len());
+    buf.extend_from_slice(&unit.to_le_bytes());
+    buf.extend_from_slice(&ev.time.0.to_le_bytes());
+    for c in &ev.categories {
+        buf.extend_from_slice(&c.to_le_bytes());
+    }
+    for n in &ev.numbers {
+        buf.extend_from_slice(&n.to_bits().to_le_bytes());
+    }
+    key.hash64("priority", &buf)
+}
+
+impl WindowAgg {
+    fn empty(plan: &Plan) -> WindowAgg {
+        WindowAgg {
+            values: plan
+                .stats
+                .iter()
+                .map(|s| s.components.iter().map(|c| vec![0i128; s.groups.len() * c.dim]).collect())
+                .collect(),
+        }
+    }
+
+    /// Adds one event's exact grid contribution to every statistic.
+    fn add(&mut self, plan: &Plan, key_maps: &[Vec<Vec<Option<u32>>>], ev: &Event) {
+        'stats: for (si, s) in plan.stats.iter().enumerate() {
+            let mut g = 0usize;
+            for (fi, (_, keys, cat)) in s.groups.fields.iter().enumerate() {
+                let domain_idx = ev.categories[*cat] as usize;
+                match key_maps[si][fi].get(domain_idx).copied().flatten() {
+                    Some(k) => g = g * keys.len() + k as usize,
+                    // The key is declared for another statistic only: not part of this one.
+                    None => continue 'stats,
+                }
+            }
+            for (ci, c) in s.components.iter().enumerate() {
+                let slot = &mut self.values[si][ci][g * c.dim..(g + 1) * c.dim];
+                contribute(c, ev, slot);
+            }
+        }
+    }
+}
+
+/// One event's contribution on the component's grid (see `plan` for the sensitivities).
+fn contribute(c: &ComponentPlan, ev: &Event, slot: &mut [i128]) {
+    let q = c.quantum();
+    match &c.role {
+        ComponentRole::Count => slot[0] += 1i128 << (-c.grid_exp),
+        ComponentRole::Sum { field, lo, hi } => {
+            slot[0] += (ev.numbers[*field].clamp(*lo, *hi) / q).round() as i128;
+        }
+        ComponentRole::CentredSum { field, lo, hi } => {
+            let mid = (lo + hi) / 2.0;
+            slot[0] += ((ev.numbers[*field].clamp(*lo, *hi) - mid) / q).round() as i128;
+        }
+        ComponentRole::Moments { features, target, layout, feature_norm_bound, target_bound, .. } => {
+            let mut x: Vec<f64> = features.iter().map(|&i| ev.numbers[i]).collect();
+            let mut y = ev.numbers[*target];
+            linear::clip(&mut x, &mut y, *feature_norm_bound, *target_bound);
+            linear::accumulate(layout, &x, y, c.grid_exp, slot);
+        }
+    }
+}
+
+/// Turns the per-component estimates of one (stat, group, scope) into a record body.
+#[allow(clippy::too_many_arguments)]
+fn render(
+    s: &StatPlan,
+    est: &[(Vec<Dd>, f64)],
+    truth: Option<&[Vec<Dd>]>,
+    key: &NoiseKey,
+    epoch: u64,
+    leaf: u32,
+    group: usize,
+    scope: &Scope,
+) -> Release {
+    let mut rec = Release {
+        seq: 0,
+        stat: s.name.clone(),
+        kind: s.kind.to_string(),
+        scope: scope.label(),
+        group: BTreeMap::new(),
+        window_start: String::new(),
+        window_end: String::new(),
+        value: serde_json::Value::Null,
+        std_error: serde_json::Value::Null,
+        epoch,
+        leaf,
+        guarantee: Guarantee {
+            unit: None,
+            level: String::new(),
+            rho: 0.0,
+            lifetime_rho: None,
+            epsilon: 0.0,
+            delta: 0.0,
+            mechanism: String::new(),
+        },
+        seeded: false,
+        note: None,
+        supersedes: None,
+        statistics: None,
+        condition_number: None,
+        fit: None,
+        truth: None,
+    };
+    match s.kind {
+        "count" | "sum" => {
+            let c = &s.components[0];
+            let q = c.quantum();
+            rec.value = release::number(est[0].0[0].to_f64() * q);
+            rec.std_error = release::number(est[0].1.sqrt() * q);
+            rec.truth = truth.map(|t| release::number(t[0][0].to_f64() * q));
+        }
+        "mean" => {
+            let (sum_c, cnt_c) = (&s.components[0], &s.components[1]);
+            let ComponentRole::CentredSum { lo, hi, .. } = sum_c.role else {
+                unreachable!("mean plans start with a centred sum")
+            };
+            let mid = (lo + hi) / 2.0;
+            let ratio = |sum: f64, cnt: f64| if cnt >= 1.0 { Some((mid + sum / cnt).clamp(lo, hi)) } else { None };
+            let sum = est[0].0[0].to_f64() * sum_c.quantum();
+            let cnt = est[1].0[0].to_f64() * cnt_c.quantum();
+            match ratio(sum, cnt) {
+                Some(v) => {
+                    // Delta method for a ratio of independent noisy terms (common practice):
+                    // Var(mid + S/C) ≈ (Var S + (S/C)² Var C) / C².
+                    let var_s = est[0].1 * sum_c.quantum().powi(2);
+                    let var_c = est[1].1 * cnt_c.quantum().powi(2);
+                    let r = sum / cnt;
+                    rec.value = release::number(v);
+                    rec.std_error = release::number(((var_s + r * r * var_c) / (cnt * cnt)).sqrt());
+                    rec.note = Some("std_error by the delta method (first order)".to_string());
+                }
+                None => {
+                    rec.note = Some("noisy count below 1: the mean is undefined for this scope".to_string());
+                }
+            }
+            rec.truth = truth.and_then(|t| {
+                ratio(t[0][0].to_f64() * sum_c.quantum(), t[1][0].to_f64() * cnt_c.quantum()).map(release::number)
+            });
+        }
+        _ => render_linear(s, est, truth, key, epoch, leaf, group, scope, &mut rec),
+    }
+    rec
+}
+
+#[allow(clippy::too_many_arguments)]
+fn render_linear(
+    s: &StatPlan,
+    est: &[(Vec<Dd>, f64)],
+    truth: Option<&[Vec<Dd>]>,
+    key: &NoiseKey,
+    epoch: u64,
+    leaf: u32,
+    group: usize,
+    scope: &Scope,
+    rec: &mut Release,
+) {
+    let c = &s.components[0];
+    let ComponentRole::Moments { layout, .. } = &c.role else {
+        unreachable!("linear plans have one moments component")
+    };
+    let q = c.quantum();
+    let method = s.fit.clone().unwrap_or(linear::FitMethod::Ridge { lambda: 0.0 });
+    let mut names: Vec<String> = Vec::new();
+    if s.intercept {
+        names.push("intercept".to_string());
+    }
+    names.extend(s.features.iter().cloned());
+    rec.fit = Some(match method {
+        linear::FitMethod::Ridge { .. } => "ridge",
+        linear::FitMethod::L1 { .. } => "l1",
+    }
+    .to_string());
+    rec.statistics = Some(Statistics {
+        names: layout.coordinate_names(&s.features, &s.target),
+        values: est[0].0.iter().map(|v| v.to_f64() * q).collect(),
+        std_error: est[0].1.sqrt() * q,
+    });
+    // The bootstrap of the l1 fit is post-processing; its randomness is derived from the
+    // key under an identity no noise node uses (level 255), so it is reproducible.
+    let scope_tag = match scope {
+        Scope::Window => 0,
+        Scope::EpochToDate => 1,
+        Scope::Trailing(n) => 2 + u64::from(*n),
+    };
+    let mut rng = key.rng_for(&NoiseId {
+        stat: &s.name,
+        component: 0,
+        group: group as u32,
+        epoch,
+        level: 255,
+        index: (u64::from(leaf) << 32) | scope_tag,
+        coord: 0,
+    });
+    let obj = |vals: &[f64]| {
+        serde_json::Value::Object(names.iter().cloned().zip(vals.iter().map(|v| release::number(*v))).collect())
+    };
+    match linear::fit(layout, &est[0].0, est[0].1, c.grid_exp, &method, &mut rng) {
+        Ok(f) => {
+            rec.value = obj(&f.coefficients);
+            rec.std_error = obj(&f.std_errors);
+            rec.condition_number = Some(f.condition_number);
+            let mut note = "coefficient std_error by the delta method".to_string();
+            if matches!(method, linear::FitMethod::L1 { .. }) {
+                note = "coefficient std_error by parametric bootstrap".to_string();
+            }
+            if let Some(r) = f.repair {
+                note.push_str("; ");
+                note.push_str(&r);
+            }
+            rec.note = Some(note);
+        }
+        Err(e) => {
+            rec.note = Some(format!("no fit: {e}"));
+        }
+    }
+    if let Some(t) = truth {
+        let mut trng = key.rng_for(&NoiseId {
+            stat: &s.name,
+            component: 1,
+            group: group as u32,
+            epoch,
+            level: 255,
+            index: u64::from(leaf),
+            coord: 0,
+        });
+        rec.truth = linear::fit(layout, &t[0], 0.0, c.grid_exp, &method, &mut trng).ok().map(|f| obj(&f.coefficients));
+    }
+}

@@ -1,0 +1,473 @@
+//! `scrim run`: the live daemon. One driver task owns the engine; ingest workers feed it
+//! through a bounded channel; HTTP handlers read published snapshots and never touch the
+//! engine; SIGTERM/SIGINT stop the sources, drain the queue and exit.
+
+use std::collections::VecDeque;
+use std::sync::atomic::{AtomicBool, Ordering};
+use std::sync::{Arc, Mutex, RwLock};
+use std::time::Duration;
+
+use serde::Serialize;
+use tokio::sync::{mpsc, watch};
+
+use crate::app::AppError;
+use crate::config::{Config, SourceConfig};
+use crate::engine::event::RejectReason;
+use crate::engine::plan::PrivacyLevel;
+use crate::engine::release::Release;
+use crate::engine::{Engine, EngineOptions};
+use crate::output::{JsonlSink, ReleaseSink};
+use crate::runtime::metrics::Metrics;
+use crate::runtime::sources::{self, Batch};
+use crate::runtime::state::{StateDir, WalRecord};
+
+/// Releases kept in memory for `/v1/releases` (older ones stay in releases.jsonl).
+pub const RELEASES_IN_MEMORY: usize = 200_000;
+/// Default and maximum page size of `/v1/releases`.
+pub const DEFAULT_LIMIT: usize = 500;
+/// Largest page.
+pub const MAX_LIMIT: usize = 5_000;
+/// Input batches the ingest queue holds before sources wait.
+pub const QUEUE_BATCHES: usize = 64;
+
+/// The most recent releases, for cursor pulls.
+#[derive(Default)]
+pub struct ReleaseStore {
+    records: VecDeque<Release>,
+}
+
+impl ReleaseStore {
+    /// Adds a record (seq increasing), evicting the oldest beyond the memory cap.
+    pub fn push(&mut self, r: Release) {
+        self.records.push_back(r);
+        while self.records.len() > RELEASES_IN_MEMORY {
+            self.records.pop_front();
+        }
+    }
+
+    /// Records with seq > `after` (all when None), at most `limit`.
+    pub fn page(&self, after: Option<u64>, limit: usize) -> Vec<Release> {
+        let start = match after {
+            None => 0,
+            Some(a) => self.records.partition_point(|r| r.seq <= a),
+        };
+        self.records.iter().skip(start).take(limit).cloned().collect()
+    }
+}
+
+/// Budget as shown by `/v1/budget` and the dashboard.
+#[derive(Clone, Debug, Default, Serialize)]
+pub struct BudgetView {
+    /// `unit` or `event`.
+    pub level: String,
+    /// Unit field, if any.
+    pub unit: Option<String>,
+    /// zCDP per epoch, all statistics.
+    pub rho_per_epoch: f64,
+    /// ε per epoch at `delta`.
+    pub epsilon_per_epoch: f64,
+    /// δ.
+    pub delta: f64,
+    /// Lifetime cap (unit level).
+    pub lifetime_rho: Option<f64>,
+    /// Lifetime spent.
+    pub lifetime_spent_rho: f64,
+    /// Lifetime left (unit level).
+    pub lifetime_remaining_rho: Option<f64>,
+    /// Epochs charged.
+    pub epochs_charged: u64,
+    /// Epochs the lifetime covers.
+    pub epochs_allowed: Option<u64>,
+    /// Current epoch.
+    pub epoch: Option<u64>,
+    /// Windows per epoch.
+    pub epoch_windows: u32,
+    /// Windows closed in the current epoch.
+    pub epoch_windows_closed: u32,
+    /// Set when releases stopped.
+    pub exhausted: Option<String>,
+    /// Per statistic: rho per epoch and lifetime spent.
+    pub stats: Vec<StatBudget>,
+    /// Counters for the dashboard.
+    pub accepted: u64,
+    /// Rejected lines.
+    pub rejected: u64,
+    /// Late events.
+    pub late: u64,
+    /// Dropped by bounds.
+    pub bounded: u64,
+}
+
+/// One statistic's share.
+#[derive(Clone, Debug, Default, Serialize)]
+pub struct StatBudget {
+    /// Name.
+    pub name: String,
+    /// Kind.
+    pub kind: String,
+    /// zCDP per epoch.
+    pub rho_per_epoch: f64,
+    /// zCDP spent over the lifetime.
+    pub spent_rho: f64,
+}
+
+/// What HTTP handlers may read.
+pub struct Shared {
+    /// Recent releases.
+    pub releases: RwLock<ReleaseStore>,
+    /// Budget snapshot.
+    pub budget: watch::Receiver<Arc<BudgetView>>,
+    /// Metrics registry.
+    pub metrics: Arc<Mutex<Metrics>>,
+    /// Set once state is loaded and sources are open.
+    pub ready: AtomicBool,
+}
+
+fn budget_view(engine: &Engine) -> BudgetView {
+    let plan = engine.plan();
+    let l = engine.ledger();
+    let c = engine.counters();
+    let (level, unit) = match &plan.level {
+        PrivacyLevel::Event => ("event", None),
+        PrivacyLevel::Unit { field, .. } => ("unit", Some(field.clone())),
+    };
+    let pos = engine.epoch_position();
+    BudgetView {
+        level: level.to_string(),
+        unit,
+        rho_per_epoch: plan.rho_per_epoch,
+        epsilon_per_epoch: plan.epsilon_per_epoch(),
+        delta: plan.delta,
+        lifetime_rho: l.lifetime_rho(),
+        lifetime_spent_rho: l.spent(),
+        lifetime_remaining_rho: l.remaining(),
+        epochs_charged: l.epochs_charged(),
+        epochs_allowed: plan.epochs_allowed(),
+        epoch: pos.map(|p| p.0),
+        epoch_windows: plan.epoch_windows,
+        epoch_windows_closed: pos.map_or(0, |p| p.1),
+        exhausted: engine.halted().map(ToString::to_string),
+        stats: plan
+            .stats
+            .iter()
+            .map(|s| StatBudget {
+                name: s.name.clone(),
+                kind: s.kind.to_string(),
+                rho_per_epoch: s.rho(),
+                spent_rho: match l.lifetime_rho() {
+                    Some(_) => s.rho() * l.epochs_charged() as f64,
+                    None if l.epochs_charged() > 0 => s.rho(),
+                    None => 0.0,
+                },
+            })
+            .collect(),
+        accepted: c.accepted,
+        rejected: c.rejected_total(),
+        late: c.late,
+        bounded: c.dropped_event_bound + c.dropped_window_bound,
+    }
+}
+
+fn update_gauges(m: &mut Metrics, engine: &Engine, window_ms: i64) {
+    m.observe(engine.counters());
+    let l = engine.ledger();
+    m.budget_spent.set(l.spent());
+    m.budget_remaining.set(l.remaining().unwrap_or(f64::INFINITY));
+    m.budget_exhausted.set(i64::from(engine.halted().is_some()));
+    let plan = engine.plan();
+    if let Some((_, closed)) = engine.epoch_position() {
+        m.epoch_windows_remaining.set(i64::from(plan.epoch_windows - closed));
+        // Epochs still affordable after the current one, each of T windows of length L.
+        let eta = match plan.epochs_allowed() {
+            Some(n) => {
+                let left_epochs = n.saturating_sub(l.epochs_charged()) as f64;
+                let left_windows = left_epochs * f64::from(plan.epoch_windows) + f64::from(plan.epoch_windows - closed);
+                left_windows * window_ms as f64 / 1000.0
+            }
+            None => f64::INFINITY,
+        };
+        m.budget_exhaustion_eta.set(eta);
+    }
+    m.windows_open.set(engine.open_windows() as i64);
+    if let Some(w) = engine.watermark() {
+        m.watermark.set(w.0 as f64 / 1000.0);
+    }
+}
+
+/// Runs the daemon until SIGTERM/SIGINT. `seed` replaces the state's OS-random noise key
+/// (only reachable with `--insecure-seed`).
+pub async fn run(config: Config, seed: Option<u64>) -> Result<(), AppError> {
+    let io = |what: String| move |source: std::io::Error| AppError::Io { context: what, source };
+    let (mut state, key, records) = StateDir::open(&config.state.dir, &config.fingerprint(), seed)
+        .map_err(|e| AppError::State(e.to_string()))?;
+    let seeded = seed.is_some();
+    let mut engine = Engine::new(&config, key, EngineOptions { seeded, danger_keep_truth: false })?;
+    // Rebuild the engine from the log: same inputs, same key, same noise, same seq.
+    let mut file_offsets = vec![0u64; config.sources.len()];
+    for r in &records {
+        match r {
+            WalRecord::Line(l) => engine.handle_line(l),
+            WalRecord::Tick(t) => engine.handle_tick(*t),
+            WalRecord::Reject(label) => {
+                if let Some(reason) = RejectReason::ALL.iter().find(|x| x.label() == label) {
+                    engine.count_rejection(*reason);
+                }
+            }
+            WalRecord::Offset { source, offset } => {
+                if let Some(o) = file_offsets.get_mut(*source as usize) {
+                    *o = *offset;
+                }
+            }
+            WalRecord::Finish => {}
+            WalRecord::Batch { lines, offset } => {
+                for l in lines {
+                    engine.handle_line(l);
+                }
+                if let Some((src, off)) = offset {
+                    if let Some(o) = file_offsets.get_mut(*src as usize) {
+                        *o = *off;
+                    }
+                }
+            }
+        }
+    }
+    let rel_path = config.output.dir.join("releases.jsonl");
+    std::fs::create_dir_all(&config.output.dir).map_err(io(format!("creating {}", config.output.dir.display())))?;
+    let published = crate::runtime::state::published_seq(&rel_path).map_err(|e| AppError::State(e.to_string()))?;
+    let mut sink = JsonlSink::open(&config.output.dir).map_err(io(format!("opening {}", config.output.dir.display())))?;
+    let mut restored = Vec::new();
+    while let Some(r) = engine.poll_release() {
+        if published.is_none_or(|p| r.seq > p) {
+            sink.publish(&r).map_err(io("writing releases".to_string()))?;
+        }
+        restored.push(r);
+    }
+    if let Some(p) = published {
+        if restored.last().is_none_or(|r| r.seq < p) {
+            return Err(AppError::State(format!(
+                "{} holds releases up to seq {p} but the state in {} reproduces fewer: restore both from the same backup",
+                rel_path.display(),
+                config.state.dir.display()
+            )));
+        }
+    }
+    sink.flush().map_err(io("writing releases".to_string()))?;
+    if !records.is_empty() {
+        tracing::info!(records = records.len(), releases = restored.len(), "state restored from the log");
+    }
+    let mut metrics = Metrics::new();
+    metrics.declare_stats(engine.plan().stats.iter().map(|s| s.name.as_str()));
+    let metrics = Arc::new(Mutex::new(metrics));
+    let (budget_tx, budget_rx) = watch::channel(Arc::new(budget_view(&engine)));
+    let mut store = ReleaseStore::default();
+    for r in restored {
+        store.push(r);
+    }
+    let shared = Arc::new(Shared {
+        releases: RwLock::new(store),
+        budget: budget_rx,
+        metrics: metrics.clone(),
+        ready: AtomicBool::new(false),
+    });
+    let (shutdown_tx, shutdown_rx) = watch::channel(false);
+    let (tx, mut rx) = mpsc::channel::<Batch>(QUEUE_BATCHES);
+    let max_line = config.input.max_line_bytes;
+
+    // HTTP first, so probes answer while sources open.
+    let http_listener = tokio::net::TcpListener::bind(config.http.listen)
+        .await
+        .map_err(io(format!("binding http.listen {}", config.http.listen)))?;
+    let http_addr = http_listener.local_addr().map_err(io("reading the HTTP address".to_string()))?;
+    let router = crate::runtime::http::router(shared.clone());
+    let mut http_shutdown = shutdown_rx.clone();
+    let http_task = tokio::spawn(async move {
+        let _ = axum::serve(http_listener, router)
+            .with_graceful_shutdown(async move {
+                let _ = http_shutdown.changed().await;
+            })
+            .await;
+    });
+    tracing::info!(%http_addr, "http listening");
+    eprintln!("scrim: http listening on {http_addr}");
+
+    let mut source_tasks = Vec::new();
+    for (i, src) in config.sources.iter().enumerate() {
+        let (tx, sd, m) = (tx.clone(), shutdown_rx.clone(), metrics.clone());
+        match src {
+            SourceConfig::Stdin => source_tasks.push(tokio::spawn(sources::stdin_source(max_line, tx, sd, m))),
+            SourceConfig::File { path } => source_tasks.push(tokio::spawn(sources::file_source(
+                i,
+                path.clone(),
+                file_offsets[i],
+                max_line,
+                tx,
+                sd,
+                m,
+                Duration::from_millis(100),
+            ))),
+            SourceConfig::Tcp { listen, max_connections, idle_timeout } => {
+                let l = tokio::net::TcpListener::bind(listen)
+                    .await
+                    .map_err(io(format!("binding sources[{i}].listen {listen}")))?;
+                let addr = l.local_addr().map_err(io("reading a source address".to_string()))?;
+                eprintln!("scrim: tcp source {i} listening on {addr}");
+                tracing::info!(%addr, "tcp source listening");
+                source_tasks.push(tokio::spawn(sources::tcp_source(
+                    l,
+                    max_line,
+                    *max_connections,
+                    Duration::from_millis(idle_timeout.0 as u64),
+                    tx,
+                    sd,
+                    m,
+                )));
+            }
+        }
+    }
+    drop(tx);
+    shared.ready.store(true, Ordering::SeqCst);
+
+    let signal = async {
+        #[cfg(unix)]
+        {
+            use tokio::signal::unix::{SignalKind, signal};
+            match (signal(SignalKind::terminate()), signal(SignalKind::interrupt())) {
+                (Ok(mut t), Ok(mut i)) => {
+                    tokio::select! { _ = t.recv() => {}, _ = i.recv() => {} }
+                }
+                _ => {
+                    let _ = tokio::signal::ctrl_c().await;
+                }
+            }
+        }
+        #[cfg(not(unix))]
+        {
+            let _ = tokio::signal::ctrl_c().await;
+        }
+    };
+    tokio::pin!(signal);
+    let mut tick = tokio::time::interval(Duration::from_millis(250));
+    let window_ms = config.window.length.0;
+    // Test hook (debug builds only): slows the engine down to exercise backpressure. Not
+    // prefixed SCRIM_, which the config loader reserves for configuration overrides.
+    let slow_hook = std::env::var("SCRIMTEST_SLOW_ENGINE_MS")
+        .ok()
+        .and_then(|v| v.parse::<u64>().ok())
+        .filter(|_| cfg!(debug_assertions));
+
+    let mut draining = false;
+    let mut sources_done = false;
+    let checkpoint_every = Duration::from_millis(config.state.checkpoint_interval.0.max(1) as u64);
+    let mut last_sync = std::time::Instant::now();
+    loop {
+        let batch = tokio::select! {
+            biased;
+            _ = &mut signal, if !draining => {
+                tracing::info!("shutdown requested: stopping sources and draining the queue");
+                let _ = shutdown_tx.send(true);
+                draining = true;
+                continue;
+            }
+            b = rx.recv(), if !sources_done => match b {
+                Some(b) => Some(b),
+                None => {
+                    // Every source ended (stdin EOF, or shutdown): drained.
+                    sources_done = true;
+                    if draining {
+                        break;
+                    }
+                    continue;
+                }
+            },
+            _ = tick.tick() => None,
+        };
+        let wal_io = io(format!("writing state in {}", config.state.dir.display()));
+        if let Some(b) = batch {
+            if let Some(ms) = slow_hook {
+                tokio::time::sleep(Duration::from_millis(ms)).await;
+            }
+            // Write-ahead: log first, then let the engine see it.
+            let logged = (|| {
+                for r in &b.rejects {
+                    state.log_reject(r.label())?;
+                }
+                state.log_batch(&b.lines, b.offset.map(|(s, o)| (s as u32, o)))?;
+                Ok::<(), std::io::Error>(())
+            })();
+            logged.map_err(wal_io)?;
+            for r in &b.rejects {
+                engine.count_rejection(*r);
+            }
+            for line in &b.lines {
+                engine.handle_line(line);
+            }
+        } else {
+            let now = crate::runtime::now();
+            if engine.poll_timeout().is_some_and(|t| t <= now) {
+                state.log_tick(now).map_err(wal_io)?;
+                engine.handle_tick(now);
+            }
+            if last_sync.elapsed() >= checkpoint_every {
+                state.sync().map_err(io(format!("syncing state in {}", config.state.dir.display())))?;
+                last_sync = std::time::Instant::now();
+            }
+        }
+        if engine_has_releases(&engine) {
+            // The inputs behind these releases are durable before anyone can see them.
+            state.sync().map_err(io(format!("syncing state in {}", config.state.dir.display())))?;
+            last_sync = std::time::Instant::now();
+        }
+        publish(&mut engine, &mut sink, &shared, &metrics, window_ms).map_err(io("writing releases".to_string()))?;
+        if let Ok(mut m) = metrics.lock() {
+            m.ingest_queue_depth.set(rx.len() as i64);
+            update_gauges(&mut m, &engine, window_ms);
+        }
+        let _ = budget_tx.send(Arc::new(budget_view(&engine)));
+    }
+    for t in source_tasks {
+        let _ = tokio::time::timeout(Duration::from_secs(5), t).await;
+    }
+    sink.flush().map_err(io("flushing releases".to_string()))?;
+    state.sync().map_err(io(format!("syncing state in {}", config.state.dir.display())))?;
+    let _ = shutdown_tx.send(true);
+    let _ = tokio::time::timeout(Duration::from_secs(5), http_task).await;
+    tracing::info!("stopped");
+    Ok(())
+}
+
+fn engine_has_releases(engine: &Engine) -> bool {
+    engine.pending_releases() > 0
+}
+
+fn publish(
+    engine: &mut Engine,
+    sink: &mut JsonlSink,
+    shared: &Shared,
+    metrics: &Mutex<Metrics>,
+    window_ms: i64,
+) -> std::io::Result<()> {
+    let mut fresh = Vec::new();
+    while let Some(r) = engine.poll_release() {
+        sink.publish(&r)?;
+        fresh.push(r);
+    }
+    if fresh.is_empty() {
+        return Ok(());
+    }
+    // Durable before visible over HTTP.
+    sink.flush()?;
+    let now = crate::runtime::now();
+    if let Ok(m) = metrics.lock() {
+        m.last_release_time.set(now.0 as f64 / 1000.0);
+        if let Some(end) = engine.last_closed_end() {
+            m.release_lag.set(((now.0 - end.0) as f64 / 1000.0).max(0.0));
+        }
+        let _ = window_ms;
+    }
+    if let Ok(mut store) = shared.releases.write() {
+        for r in fresh {
+            store.push(r);
+        }
+    }
+    Ok(())
+}
