@@ -757,11 +757,12 @@ mod tests {
     fn calibrate(
         kind: MechanismKind,
         horizon: u32,
+        dim: usize,
         max_trailing: u32,
         n_runs: usize,
         checkpoint: impl Fn(u32) -> bool,
     ) {
-        let dim = 2;
+        assert!((1..=2).contains(&dim));
         let leaves: Vec<[i128; 2]> = (0..horizon)
             .map(|i| {
                 [
@@ -782,7 +783,7 @@ mod tests {
             let mut mech = new_mechanism(kind, horizon, dim, max_trailing, calibration_node_var());
             let mut slot = 0;
             for t in 1..=horizon {
-                mech.push_leaf(&leaves[t as usize - 1], &mut noise);
+                mech.push_leaf(&leaves[t as usize - 1][..dim], &mut noise);
                 if !checkpoint(t) {
                     continue;
                 }
@@ -848,17 +849,17 @@ mod tests {
 
     #[test]
     fn monte_carlo_tree_variance_matches_prediction_at_t64() {
-        calibrate(MechanismKind::Tree, 64, 24, 2000, |_| true);
+        calibrate(MechanismKind::Tree, 64, 2, 24, 2000, |_| true);
     }
 
     #[test]
     fn monte_carlo_sqrt_variance_matches_prediction_at_t64() {
-        calibrate(MechanismKind::SqrtFactorization, 64, 24, 2000, |_| true);
+        calibrate(MechanismKind::SqrtFactorization, 64, 2, 24, 2000, |_| true);
     }
 
     #[test]
     fn monte_carlo_independent_variance_matches_prediction_at_t64() {
-        calibrate(MechanismKind::Independent, 64, 24, 2000, |_| true);
+        calibrate(MechanismKind::Independent, 64, 2, 24, 2000, |_| true);
     }
 
     /// Heavier calibration at T = 720 (the contract's example epoch) with a 168-leaf trailing
@@ -867,21 +868,29 @@ mod tests {
     #[ignore]
     fn monte_carlo_variance_matches_prediction_at_t720() {
         for kind in MechanismKind::ALL {
-            calibrate(kind, 720, 168, 2000, |t| {
+            calibrate(kind, 720, 2, 168, 2000, |t| {
                 t.is_multiple_of(7) || t == 720 || t < 4
             });
         }
     }
 
     /// Heaviest calibration at T = 8760 (a year of hours). The square-root factorization
-    /// costs O(T²) per run, so it gets 300 runs. Run with
+    /// costs O(T²·D) per run, so it gets one coordinate and 300 runs (the χ² bounds account
+    /// for the smaller sample). Run with
     /// `cargo test --release -- --ignored monte_carlo_variance_matches_prediction_at_t8760`.
     #[test]
     #[ignore]
     fn monte_carlo_variance_matches_prediction_at_t8760() {
         let checkpoint = |t: u32| t.is_multiple_of(511) || t == 8760 || t == 8191 || t == 1;
-        calibrate(MechanismKind::Tree, 8760, 168, 2000, checkpoint);
-        calibrate(MechanismKind::Independent, 8760, 168, 2000, checkpoint);
-        calibrate(MechanismKind::SqrtFactorization, 8760, 168, 300, checkpoint);
+        calibrate(MechanismKind::Tree, 8760, 2, 168, 2000, checkpoint);
+        calibrate(MechanismKind::Independent, 8760, 2, 168, 2000, checkpoint);
+        calibrate(
+            MechanismKind::SqrtFactorization,
+            8760,
+            1,
+            168,
+            300,
+            checkpoint,
+        );
     }
 }

@@ -211,7 +211,10 @@ fn for_each_term(n_leaves: u32, range: LeafRange, mut visit: impl FnMut(Term)) {
                 index: subtree_start >> height,
                 count: q - p + 1,
             });
-            for level in 1..=height {
+            // A fully covered subtree has c·ψ_b = 0 for all its wavelets, so only the (at
+            // most two) partially covered subtrees walk their paths: O(log T) overall.
+            let partial = p > subtree_start || q < subtree_end - 1;
+            for level in (1..=height).filter(|_| partial) {
                 let (index_p, index_q) = (p >> level, q >> level);
                 let path_nodes = if index_p == index_q { 1 } else { 2 };
                 for index in [index_p, index_q].into_iter().take(path_nodes) {
