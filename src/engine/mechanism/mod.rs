@@ -169,7 +169,7 @@ pub fn new_mechanism(
     }
 }
 
-/// Number of tree levels h = ⌊log₂ T⌋ + 1 (privacy-math.md §4, [D]): level l has a node
+/// Number of tree levels h = ⌊log₂ T⌋ + 1 (privacy-math.md §4, \[D\]): level l has a node
 /// only if some aligned block of 2^l leaves fits inside [0, T), i.e. 2^l ≤ T.
 /// `levels(0) = 0` (no leaves, no nodes).
 pub fn levels(horizon: u32) -> u32 {
@@ -188,10 +188,10 @@ fn round_up(x: f64, n_ops: f64) -> f64 {
 /// Squared L2 sensitivity of everything the mechanism releases over one epoch, in grid
 /// units², when one privacy unit changes at most `max_leaves` leaves, each by a vector of L2
 /// norm at most `leaf_bound` (grid units). At most `horizon` leaves exist, so `max_leaves` is
-/// capped at `horizon`. The result is rounded up (see [`round_up`]) so that floating-point
+/// capped at `horizon`. The result is rounded up (see `round_up`) so that floating-point
 /// error never makes it smaller than the true bound.
 ///
-/// * Tree (privacy-math.md §8, [D]): Δ₂² ≤ B²·m·Σ_{l<h} min(2^l, m). At level l the m changed
+/// * Tree (privacy-math.md §8, \[D\]): Δ₂² ≤ B²·m·Σ_{l<h} min(2^l, m). At level l the m changed
 ///   leaves fall into nodes holding n_v ≤ min(2^l, m) of them with Σ_v n_v ≤ m, so
 ///   Σ_v n_v² ≤ min(2^l, m)·m. For D > 1 a node's change is a sum of ≤ n_v leaf changes of
 ///   norm ≤ B each, so by the triangle inequality its squared norm is ≤ (n_v·B)²: the same

@@ -28,12 +28,12 @@
 //! u_v is built bottom-up when v completes: u_v = 2^{level v}·y_v + u_left + u_right. Only the
 //! nodes b on the two boundary paths of the range have c·ψ_b ≠ 0 (any other node is inside
 //! the range or disjoint from it), so an estimate costs O(log T). Checks: a whole subtree
-//! gives 2^H/(2^{H+1} − 1) (privacy-math.md §4, [D]); a single leaf with H = 1 gives 2/3.
+//! gives 2^H/(2^{H+1} − 1) (privacy-math.md §4, \[D\]); a single leaf with H = 1 gives 2/3.
 //! Both are unit tests, as is the agreement with dense GLS for all ranges at small T.
 //!
 //! Memory: the mechanism keeps the current forest roots plus every node that ends after
 //! leaf t − M (M = `max_trailing`): at most 2M + 2h nodes. That is enough for every
-//! answerable range (proof at [`TreeMechanism::wavelet_difference`]).
+//! answerable range (proof at `TreeMechanism::wavelet_difference`).
 
 use std::collections::VecDeque;
 
@@ -456,7 +456,7 @@ mod tests {
         }
     }
 
-    /// Dense GLS after `t` leaves (privacy-math.md §4, [D]; Honaker 2015): builds the 0/1
+    /// Dense GLS after `t` leaves (privacy-math.md §4, \[D\]; Honaker 2015): builds the 0/1
     /// node-by-leaf matrix A of every node ending at or before t, solves (AᵀA) x̂ = Aᵀy with
     /// a Cholesky factorisation, and returns x̂ and (AᵀA)⁻¹.
     fn dense_gls(
