@@ -296,9 +296,12 @@ fn restart_resumes_from_state_without_losing_or_duplicating() {
 #[test]
 fn slow_engine_makes_the_sender_block_instead_of_growing_memory() {
     let dir = tempfile::tempdir().unwrap();
-    let d = start(dir.path(), &config(dir.path(), false), &[("SCRIMTEST_SLOW_ENGINE_MS", "200")]);
+    let d = start(dir.path(), &config(dir.path(), false), &[("SCRIMTEST_SLOW_ENGINE_MS", "2000")]);
     wait_until(|| get(&d.http, "/readyz").0 == 200, 20, "readyz");
     let mut c = TcpStream::connect(&d.tcp).unwrap();
+    // The slowed engine takes one batch (≤ 512 lines) every 2 s, about 60 KB/s. Once the
+    // ingest queue (64 batches) and the socket buffers are full, one 200 KB write cannot
+    // finish within 3 s: the sender is blocked by TCP flow control.
     c.set_write_timeout(Some(Duration::from_secs(3))).unwrap();
     let line = format!("{{\"ts\":{},\"zone\":\"harbour\",\"pad\":\"{}\"}}\n", now_ms(), "x".repeat(200));
     let chunk = line.repeat(1000);
@@ -308,7 +311,7 @@ fn slow_engine_makes_the_sender_block_instead_of_growing_memory() {
             Ok(n) => written += n,
             Err(_) => break true,
         }
-        if written > 400 * 1024 * 1024 {
+        if written > 200 * 1024 * 1024 {
             break false;
         }
     };

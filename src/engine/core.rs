@@ -751,6 +751,10 @@ fn render_linear(
             rec.note = Some(note);
         }
         Err(e) => {
+            // The record keeps its shape (an object per coefficient), with nulls.
+            let nulls = vec![f64::NAN; names.len()];
+            rec.value = obj(&nulls);
+            rec.std_error = obj(&nulls);
             rec.note = Some(format!("no fit: {e}"));
         }
     }
