@@ -1032,12 +1032,15 @@ mod tests {
         for seen in &week.good {
             *per_card_hour.entry((seen.card.as_str(), seen.ts.0.div_euclid(3_600_000))).or_default() += 1;
         }
-        // Ordinary riders tap at most 4 times a day; the 2 episodes a day (20 000 cards /
-        // 10 000) of 30-200 taps within one hour land at least 15 taps in some clock hour.
-        let n_heavy = per_card_hour.values().filter(|&&n| n >= 15).count();
-        assert!((1..=14).contains(&n_heavy) || n_heavy <= 28, "{n_heavy} heavy card-hours");
-        assert!(n_heavy >= 7, "{n_heavy} heavy card-hours");
+        // 2 episodes a day (20 000 cards / 10 000), each 30-200 taps within one hour, so
+        // spread over at most 2 clock hours: one of them holds at least 15 taps (pigeonhole;
+        // the ~1% of lines lost to bad lines or moved by lateness does not change that at
+        // this seed), and at most 2 hours per episode can. Ordinary riders tap at most 4
+        // times a day, so no other card-hour reaches 15.
         let n_episodes = 7 * 2;
+        let n_heavy = per_card_hour.values().filter(|&&n| n >= 15).count() as u64;
+        assert!((n_episodes..=2 * n_episodes).contains(&n_heavy), "{n_heavy} heavy card-hours");
+        assert!(per_card_hour.values().any(|&n| n >= 30));
         assert!((30 * n_episodes..=200 * n_episodes).contains(&week.stats.spam_lines), "{}", week.stats.spam_lines);
     }
 
