@@ -310,7 +310,7 @@ fn weighted_index(rng: &mut ChaCha20Rng, weights: &[u32]) -> usize {
 /// (it lies on x's own ulp grid), so the comparison with ±0.5 decides exactly; at or above
 /// 2^52 every f64 is already an integer. `copysign` restores the sign of a zero result.
 fn round_fast(x: f64) -> f64 {
-    if !(x.abs() < 4_503_599_627_370_496.0) {
+    if x.is_nan() || x.abs() >= 4_503_599_627_370_496.0 {
         return x; // ≥ 2^52, infinite or NaN: nothing to round.
     }
     let t = x as i64 as f64;
@@ -923,7 +923,7 @@ fn write_f64(out: &mut Vec<u8>, value: f64) {
         }
         let magnitude = tenths.unsigned_abs();
         write_i64(out, (magnitude / 10) as i64);
-        if magnitude % 10 != 0 {
+        if !magnitude.is_multiple_of(10) {
             out.push(b'.');
             out.push(b'0' + (magnitude % 10) as u8);
         }
@@ -1247,7 +1247,7 @@ mod tests {
             .collect::<HashSet<_>>()
             .len();
         assert!(
-            n_distinct <= 20_000 && n_distinct >= 19_000,
+            (19_000..=20_000).contains(&n_distinct),
             "{n_distinct} distinct cards"
         );
     }
