@@ -481,8 +481,8 @@ impl DemoFeed {
         let (day_ms, start_ms, end_ms) = (self.day_ms, self.start_ms, self.end_ms);
         self.plan.retain(|tap| {
             let ts = day_ms + i64::from(tap.sec_of_day) * 1000;
-            // Every time drawn above ends before 23:00; the first test keeps the sort's
-            // indices in range even if that ever changed.
+            // Every time drawn above is before 23:00; checking `< DAY_SECS` anyway keeps
+            // the counting sort's indices in range should that ever change.
             tap.sec_of_day < DAY_SECS && (start_ms..end_ms).contains(&ts)
         });
         self.sort_plan_by_time();
@@ -548,7 +548,7 @@ impl DemoFeed {
             // maximum event time sees the lag too. Before any on-time event there is no
             // feed time to lag, and the line goes out on time.
             if let Some(feed_time) = self.feed_time {
-                ts = feed_time - i64::from(rng.random_range(360u32..=1_800)) * 1000;
+                ts = feed_time.saturating_sub(i64::from(rng.random_range(360u32..=1_800)) * 1000);
                 late = true;
             }
         }
