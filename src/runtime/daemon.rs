@@ -325,6 +325,9 @@ pub async fn run(config: Config, seed: Option<u64>) -> Result<(), AppError> {
         }
     }
     drop(tx);
+    if let Ok(mut m) = metrics.lock() {
+        update_gauges(&mut m, &engine, config.window.length.0);
+    }
     shared.ready.store(true, Ordering::SeqCst);
 
     let signal = async {
