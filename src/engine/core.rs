@@ -24,7 +24,7 @@ use crate::engine::ledger::{BudgetError, EpochCharge, Ledger};
 use crate::engine::linear;
 use crate::engine::mechanism::{self, ContinualMechanism, NodeAddr, NodeNoise};
 use crate::engine::noise::{self, NoiseId, NoiseKey};
-use crate::engine::plan::{ComponentPlan, ComponentRole, Plan, PlanError, PrivacyLevel, Scope, StatPlan};
+use crate::engine::plan::{ComponentPlan, ComponentRole, Plan, PlanError, PrivacyLevel, Scope, StatPlan, moment_unit};
 use crate::engine::release::{self, Guarantee, Release, Statistics};
 use crate::engine::time::Millis;
 
@@ -593,9 +593,16 @@ fn contribute(c: &ComponentPlan, ev: &Event, slot: &mut [i128]) {
             slot[0] += ((ev.numbers[*field].clamp(*lo, *hi) - mid) / q).round() as i128;
         }
         ComponentRole::Moments { features, target, layout, feature_norm_bound, target_bound, .. } => {
+            // Clip in value units, then normalise by powers of two (exact; see
+            // `plan::moment_unit`) so the packed moments have comparable scales.
+            let (ux, uy) = (moment_unit(*feature_norm_bound), moment_unit(*target_bound));
             let mut x: Vec<f64> = features.iter().map(|&i| ev.numbers[i]).collect();
             let mut y = ev.numbers[*target];
             linear::clip(&mut x, &mut y, *feature_norm_bound, *target_bound);
+            for v in &mut x {
+                *v /= ux;
+            }
+            y /= uy;
             linear::accumulate(layout, &x, y, c.grid_exp, slot);
         }
     }
@@ -696,9 +703,24 @@ fn render_linear(
     rec: &mut Release,
 ) {
     let c = &s.components[0];
-    let ComponentRole::Moments { layout, .. } = &c.role else {
+    let ComponentRole::Moments { layout, feature_norm_bound, target_bound, .. } = &c.role else {
         unreachable!("linear plans have one moments component")
     };
+    // Coefficients fitted in normalised units map back: y = u_y·y', x = u_x·x', so the
+    // intercept scales by u_y and each slope by u_y / u_x (std errors alike).
+    let (ux, uy) = (moment_unit(*feature_norm_bound), moment_unit(*target_bound));
+    let mut unscale: Vec<f64> = Vec::new();
+    if s.intercept {
+        unscale.push(uy);
+    }
+    unscale.extend(std::iter::repeat_n(uy / ux, s.features.len()));
+    let back = |v: &[f64]| v.iter().zip(&unscale).map(|(a, f)| a * f).collect::<Vec<f64>>();
+    let mut scales: Vec<f64> = Vec::new();
+    if s.intercept {
+        scales.push(1.0);
+    }
+    scales.extend(std::iter::repeat_n(ux, s.features.len()));
+    scales.push(uy);
     let q = c.quantum();
     let method = s.fit.clone().unwrap_or(linear::FitMethod::Ridge { lambda: 0.0 });
     let mut names: Vec<String> = Vec::new();
@@ -715,6 +737,7 @@ fn render_linear(
         names: layout.coordinate_names(&s.features, &s.target),
         values: est[0].0.iter().map(|v| v.to_f64() * q).collect(),
         std_error: est[0].1.sqrt() * q,
+        scales,
     });
     // The bootstrap of the l1 fit is post-processing; its randomness is derived from the
     // key under an identity no noise node uses (level 255), so it is reproducible.
@@ -737,8 +760,8 @@ fn render_linear(
     };
     match linear::fit(layout, &est[0].0, est[0].1, c.grid_exp, &method, &mut rng) {
         Ok(f) => {
-            rec.value = obj(&f.coefficients);
-            rec.std_error = obj(&f.std_errors);
+            rec.value = obj(&back(&f.coefficients));
+            rec.std_error = obj(&back(&f.std_errors));
             rec.condition_number = Some(f.condition_number);
             let mut note = "coefficient std_error by the delta method".to_string();
             if matches!(method, linear::FitMethod::L1 { .. }) {
@@ -768,7 +791,7 @@ fn render_linear(
             index: u64::from(leaf),
             coord: 0,
         });
-        rec.truth = linear::fit(layout, &t[0], 0.0, c.grid_exp, &method, &mut trng).ok().map(|f| obj(&f.coefficients));
+        rec.truth = linear::fit(layout, &t[0], 0.0, c.grid_exp, &method, &mut trng).ok().map(|f| obj(&back(&f.coefficients)));
     }
 }
 

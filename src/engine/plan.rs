@@ -432,17 +432,28 @@ fn roles_of(s: &StatConfig, number_index: &mut impl FnMut(&str) -> usize) -> Vec
     }
 }
 
+/// The unit in which the linear kind accumulates a clipped quantity with bound `b`: the
+/// smallest power of two ≥ b. Dividing by a power of two is exact in floating point, so the
+/// normalised data carry no extra rounding (NIST StRD digits are unaffected), and the
+/// normalised bound `b / unit` lies in (1/2, 1]. Normalising puts n, Σx, Σy, XᵀX, Xᵀy and
+/// yᵀy on comparable scales, so one noise scale serves them all: without it the count n
+/// gets noise sized for the largest y², which can swamp it.
+pub fn moment_unit(b: f64) -> f64 {
+    if b > 0.0 && b.is_finite() { 2f64.powi(b.log2().ceil() as i32) } else { 1.0 }
+}
+
 /// Largest |contribution| of one event in value units, and the coordinates per event.
 fn value_scale(role: &ComponentRole) -> (f64, usize) {
     match role {
         ComponentRole::Count => (1.0, 1),
         ComponentRole::Sum { lo, hi, .. } => (lo.abs().max(hi.abs()), 1),
         ComponentRole::CentredSum { lo, hi, .. } => ((hi - lo) / 2.0, 1),
+        // Moments are accumulated in normalised units (see `moment_units`), where the clip
+        // bounds become r_x, r_y ≤ 1, so ‖z‖² ≤ [intercept] + r_x² + r_y² ≤ 3.
         ComponentRole::Moments { layout, intercept, feature_norm_bound, target_bound, .. } => {
-            let z2 = if *intercept { 1.0 } else { 0.0 }
-                + feature_norm_bound * feature_norm_bound
-                + target_bound * target_bound;
-            (z2, layout.dim())
+            let (ux, uy) = (moment_unit(*feature_norm_bound), moment_unit(*target_bound));
+            let (rx, ry) = (feature_norm_bound / ux, target_bound / uy);
+            (if *intercept { 1.0 } else { 0.0 } + rx * rx + ry * ry, layout.dim())
         }
     }
 }
@@ -453,7 +464,8 @@ fn value_scale(role: &ComponentRole) -> (f64, usize) {
 /// - Sum: `round(clamp(v)/q)` is monotone in `v`, so its largest magnitude is attained at an
 ///   end of the range: `max(|round(lo/q)|, |round(hi/q)|)²` — exact, no slack needed.
 /// - Centred sum: the same with `lo - mid` and `hi - mid` (rounding of `v - mid` is monotone).
-/// - Moments: [`linear::event_sensitivity_sq`] (upper-triangle norm ≤ ‖z‖², plus rounding).
+/// - Moments: [`linear::event_sensitivity_sq`] (upper-triangle norm ≤ ‖z‖², plus rounding) in
+///   normalised units, where the clip bounds are 1.
 fn event_sens_sq(role: &ComponentRole, e: i32) -> f64 {
     let q = 2f64.powi(e);
     match role {
@@ -470,9 +482,12 @@ fn event_sens_sq(role: &ComponentRole, e: i32) -> f64 {
             let m = ((lo - mid) / q).round().abs().max(((hi - mid) / q).round().abs());
             m * m
         }
-        ComponentRole::Moments { layout, feature_norm_bound, target_bound, .. } => {
-            linear::event_sensitivity_sq(layout, *feature_norm_bound, *target_bound, e)
-        }
+        ComponentRole::Moments { layout, feature_norm_bound, target_bound, .. } => linear::event_sensitivity_sq(
+            layout,
+            feature_norm_bound / moment_unit(*feature_norm_bound),
+            target_bound / moment_unit(*target_bound),
+            e,
+        ),
     }
 }
 
