@@ -206,6 +206,10 @@ pub struct LinearConfig {
     pub intercept: bool,
     /// L2 clip of the feature vector (finite, > 0).
     pub feature_norm_bound: f64,
+    /// Optional per-feature clamps |x_j| ≤ b_j (one per feature, finite, > 0). They let the
+    /// engine normalise each feature by its own scale, so a feature with a small range is
+    /// not drowned by noise sized for the largest one.
+    pub feature_bounds: Option<Vec<f64>>,
     /// Clip of |target| (finite, > 0).
     pub target_bound: f64,
     /// How the model is fitted from the noisy statistics.
@@ -537,6 +541,9 @@ pub struct RawStat {
     /// `feature_norm_bound` (linear).
     #[serde(default, deserialize_with = "strict::num")]
     pub feature_norm_bound: Option<f64>,
+    /// `feature_bounds` (linear, optional).
+    #[serde(default, deserialize_with = "strict::nums")]
+    pub feature_bounds: Option<Vec<f64>>,
     /// `target_bound` (linear).
     #[serde(default, deserialize_with = "strict::num")]
     pub target_bound: Option<f64>,
@@ -1504,6 +1511,7 @@ fn kind_keys(kind: &str) -> &'static [&'static str] {
             "features",
             "intercept",
             "feature_norm_bound",
+            "feature_bounds",
             "target_bound",
             "fit",
             "ridge_lambda",
@@ -1522,6 +1530,7 @@ fn present_kind_keys(raw: &RawStat) -> Vec<&'static str> {
         ("features", raw.features.is_some()),
         ("intercept", raw.intercept.is_some()),
         ("feature_norm_bound", raw.feature_norm_bound.is_some()),
+        ("feature_bounds", raw.feature_bounds.is_some()),
         ("target_bound", raw.target_bound.is_some()),
         ("fit", raw.fit.is_some()),
         ("ridge_lambda", raw.ridge_lambda.is_some()),
@@ -1805,6 +1814,26 @@ fn resolve_linear(
         &key("feature_norm_bound"),
         "a clipping bound",
     )?;
+    let feature_bounds = match &raw.feature_bounds {
+        None => None,
+        Some(b) => {
+            if b.len() != features.len() {
+                return Err(invalid(
+                    key("feature_bounds"),
+                    format!(
+                        "{} bounds for {} features: give one clamp |x| ≤ b per feature, in the order of `features`",
+                        b.len(),
+                        features.len()
+                    ),
+                ));
+            }
+            let mut out = Vec::with_capacity(b.len());
+            for v in b {
+                out.push(positive(*v, &key("feature_bounds"), "a clipping bound")?);
+            }
+            Some(out)
+        }
+    };
     let target_bound = positive(
         raw.target_bound.ok_or_else(|| {
             missing(
@@ -1863,6 +1892,7 @@ fn resolve_linear(
         features,
         intercept: raw.intercept.unwrap_or(true),
         feature_norm_bound,
+        feature_bounds,
         target_bound,
         fit,
     })
@@ -2173,6 +2203,12 @@ impl Config {
                     }
                     w.int("stat.intercept", i64::from(lin.intercept));
                     w.float("stat.feature_norm_bound", lin.feature_norm_bound);
+                    if let Some(b) = &lin.feature_bounds {
+                        w.count("stat.feature_bounds.len", b.len());
+                        for v in b {
+                            w.float("stat.feature_bound", *v);
+                        }
+                    }
                     w.float("stat.target_bound", lin.target_bound);
                     match lin.fit {
                         FitConfig::Ridge { lambda } => w.float("stat.fit.ridge", lambda),
