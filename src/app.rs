@@ -270,14 +270,14 @@ fn replay_with_state(
             n_releases += 1;
         }
     }
-    if let Some(p) = published {
-        if regenerated == 0 || p >= regenerated {
-            return Err(AppError::State(format!(
-                "{} holds releases up to seq {p} but the state in {} only reproduces {regenerated}: the state is truncated or older than the output; restore both from the same backup",
-                rel_path.display(),
-                state_dir.display()
-            )));
-        }
+    if let Some(p) = published
+        && (regenerated == 0 || p >= regenerated)
+    {
+        return Err(AppError::State(format!(
+            "{} holds releases up to seq {p} but the state in {} only reproduces {regenerated}: the state is truncated or older than the output; restore both from the same backup",
+            rel_path.display(),
+            state_dir.display()
+        )));
     }
     sink.flush().map_err(io("writing releases"))?;
     let mut lines = 0u64;
@@ -316,7 +316,7 @@ fn replay_with_state(
             while let Some(r) = engine.poll_release() {
                 fresh.push(r);
             }
-            if !fresh.is_empty() || lines % 4096 == 0 {
+            if !fresh.is_empty() || lines.is_multiple_of(4096) {
                 st.log_offset(0, offset).map_err(wal_err)?;
             }
             if !fresh.is_empty() {

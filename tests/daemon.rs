@@ -150,7 +150,7 @@ fn dechunk(body: &str) -> String {
             break;
         }
         out.push_str(&tail[..n]);
-        rest = &tail[n..].trim_start_matches("\r\n");
+        rest = tail[n..].trim_start_matches("\r\n");
     }
     out
 }

@@ -804,10 +804,7 @@ fn render_linear(
     scales.extend(units.features.iter().copied());
     scales.push(uy);
     let q = c.quantum();
-    let method = s
-        .fit
-        .clone()
-        .unwrap_or(linear::FitMethod::Ridge { lambda: 0.0 });
+    let method = s.fit.unwrap_or(linear::FitMethod::Ridge { lambda: 0.0 });
     let mut names: Vec<String> = Vec::new();
     if s.intercept {
         names.push("intercept".to_string());
@@ -1038,6 +1035,7 @@ target_bound = 30.0
                         level += 1;
                     }
                 }
+                #[allow(clippy::needless_range_loop)] // t and j index a matrix product
                 MechanismKind::SqrtFactorization => {
                     let mut c = vec![1.0f64; n];
                     for k in 1..n {

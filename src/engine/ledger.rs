@@ -97,13 +97,13 @@ impl Ledger {
 
     /// Charges `epoch`. Fails closed when the lifetime cap cannot cover it.
     pub fn charge_epoch(&mut self, epoch: u64) -> Result<EpochCharge, BudgetError> {
-        if let Some(last) = self.last_epoch {
-            if epoch <= last {
-                return Err(BudgetError::OutOfOrder {
-                    epoch,
-                    last: self.last_epoch,
-                });
-            }
+        if let Some(last) = self.last_epoch
+            && epoch <= last
+        {
+            return Err(BudgetError::OutOfOrder {
+                epoch,
+                last: self.last_epoch,
+            });
         }
         if let Some(lifetime) = self.lifetime_rho {
             let after = (self.epochs_charged + 1) as f64 * self.rho_per_epoch;

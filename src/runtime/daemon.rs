@@ -243,10 +243,10 @@ pub async fn run(config: Config, seed: Option<u64>) -> Result<(), AppError> {
                 for l in lines {
                     engine.handle_line(l);
                 }
-                if let Some((src, off)) = offset {
-                    if let Some(o) = file_offsets.get_mut(*src as usize) {
-                        *o = *off;
-                    }
+                if let Some((src, off)) = offset
+                    && let Some(o) = file_offsets.get_mut(*src as usize)
+                {
+                    *o = *off;
                 }
             }
         }
@@ -266,14 +266,14 @@ pub async fn run(config: Config, seed: Option<u64>) -> Result<(), AppError> {
         }
         restored.push(r);
     }
-    if let Some(p) = published {
-        if restored.last().is_none_or(|r| r.seq < p) {
-            return Err(AppError::State(format!(
-                "{} holds releases up to seq {p} but the state in {} reproduces fewer: restore both from the same backup",
-                rel_path.display(),
-                config.state.dir.display()
-            )));
-        }
+    if let Some(p) = published
+        && restored.last().is_none_or(|r| r.seq < p)
+    {
+        return Err(AppError::State(format!(
+            "{} holds releases up to seq {p} but the state in {} reproduces fewer: restore both from the same backup",
+            rel_path.display(),
+            config.state.dir.display()
+        )));
     }
     sink.flush().map_err(io("writing releases".to_string()))?;
     if !records.is_empty() {

@@ -243,9 +243,11 @@ mod tests {
     fn contract_metric_names_are_exported() {
         let mut m = Metrics::new();
         m.declare_stats(["taps"]);
-        let mut c = Counters::default();
-        c.accepted = 5;
-        c.late = 1;
+        let mut c = Counters {
+            accepted: 5,
+            late: 1,
+            ..Counters::default()
+        };
         c.rejected.insert("invalid_json", 2);
         c.releases.insert("taps".to_string(), 3);
         m.observe(&c);

@@ -499,8 +499,7 @@ pub fn published_seq(path: &Path) -> Result<Option<u64>, StateError> {
     }
     let last = text[..complete]
         .split(|&b| b == b'\n')
-        .filter(|l| !l.is_empty())
-        .next_back();
+        .rfind(|l| !l.is_empty());
     match last {
         None => Ok(None),
         Some(l) => {
