@@ -895,8 +895,20 @@ fn fixture_scenarios() -> BTreeMap<&'static str, Scenario> {
         "epochs_charged": 1, "epochs_allowed": null, "epoch": 0, "epoch_windows": 720,
         "epoch_windows_closed": 0, "exhausted": null, "stats": fixture_stats(),
         "accepted": 0, "rejected": 0, "late": 0, "bounded": 0});
+    // Unit level, no event yet: nothing charged, the first epoch not started.
+    let mut fresh = unit.clone();
+    for (k, v) in [
+        ("lifetime_spent_rho", json!(0.0)),
+        ("lifetime_remaining_rho", json!(4.0)),
+        ("epochs_charged", json!(0)),
+        ("epoch", Value::Null),
+        ("epoch_windows_closed", json!(0)),
+    ] {
+        fresh[k] = v;
+    }
     BTreeMap::from([
         ("unit", Scenario { budget: unit, releases: fixture_releases(Some(3)) }),
+        ("fresh", Scenario { budget: fresh, releases: Vec::new() }),
         ("exhausted", Scenario { budget: exhausted, releases: fixture_releases(None)[..40].to_vec() }),
         ("event", Scenario { budget: event, releases: Vec::new() }),
     ])
@@ -960,10 +972,11 @@ fn dashboard_renders_the_unit_level_fixture_with_paging_bands_gaps_and_budget() 
     assert_eq!((progress.attr("data-closed"), progress.attr("data-total")), (Some("100"), Some("720")));
     assert_eq!(text_after(&html, by_id(&all, "epochs")), "2 of 8");
 
-    // Projection: windows left = (allowed − charged) × T + (T − closed), the arithmetic of
-    // the daemon's scrim_budget_exhaustion_eta_seconds (src/runtime/daemon.rs):
-    // (8 − 2) × 720 + (720 − 100) = 4940 windows of one hour. The page evaluates Date.now()
-    // between t_before and t_after plus at most the 15 s of virtual time Chromium may add.
+    // Projection: an epoch is charged when its first window closes (src/engine/core.rs,
+    // close_next), so with 100 windows of epoch 1 closed, epochs 0 and 1 are paid for, epoch 1
+    // covers 720 − 100 more windows and the 8 − 2 uncharged epochs 720 each: 4940 windows of
+    // one hour. The page evaluates Date.now() between t_before and t_after plus at most the
+    // 15 s of virtual time Chromium may add.
     let eta = by_id(&all, "exhaustion-eta");
     assert_eq!(eta.attr("data-remaining-windows"), Some("4940"));
     assert_eq!(eta.attr("data-window-ms"), Some("3600000"));
@@ -1023,7 +1036,7 @@ fn dashboard_renders_the_unit_level_fixture_with_paging_bands_gaps_and_budget() 
 }
 
 #[test]
-fn dashboard_shows_exhaustion_and_event_level_budgets() {
+fn dashboard_shows_exhaustion_event_level_and_fresh_budgets() {
     let Some(chromium) = tool("chromium") else { return };
     let (addr, _) = serve_fixtures(fixture_scenarios(), 500);
 
@@ -1037,7 +1050,11 @@ fn dashboard_shows_exhaustion_and_event_level_budgets() {
     assert!(by_id(&all, "banner-seeded").attrs.contains_key("hidden"), "no seeded record here");
     let gauge = by_id(&all, "budget-gauge");
     assert_eq!((gauge.attr("data-state"), gauge.attr("data-fraction")), (Some("exhausted"), Some("1")));
-    assert_eq!(text_after(&html, by_id(&all, "exhaustion-eta")), "exhausted");
+    let eta = by_id(&all, "exhaustion-eta");
+    assert_eq!(text_after(&html, eta), "exhausted");
+    // Epoch 8 has no window closed, so it is not charged: 8 of 8 charged leaves 0 windows
+    // (counting its 720 windows as covered would be the off-by-one-epoch mistake).
+    assert_eq!(eta.attr("data-remaining-windows"), Some("0"));
 
     let html = chromium_dom(&chromium, &format!("http://{addr}/event/"), &[]);
     let all = tags(&html);
@@ -1059,6 +1076,18 @@ fn dashboard_shows_exhaustion_and_event_level_budgets() {
     let p = panels(&all);
     assert_eq!(p.len(), 4);
     assert!(p.values().all(|t| t.attr("data-points") == Some("0")));
+
+    // Before the first event no epoch is charged: all 8 allowed epochs of 720 windows are
+    // ahead (8 × 720 = 5760), and no date can be given without a release's window length.
+    let html = chromium_dom(&chromium, &format!("http://{addr}/fresh/"), &[]);
+    let all = tags(&html);
+    assert_healthy_page(&html, &all);
+    let eta = by_id(&all, "exhaustion-eta");
+    assert_eq!(eta.attr("data-remaining-windows"), Some("5760"));
+    assert_eq!(eta.attr("data-eta-ms"), Some(""));
+    assert_eq!(text_after(&html, eta), "5,760 windows (date after the first release)");
+    assert_eq!(text_after(&html, by_id(&all, "epoch-label")), "no epoch started yet (720 windows per epoch)");
+    assert_eq!(by_id(&all, "budget-gauge").attr("data-fraction"), Some("0"));
 }
 
 // ---- dashboard: the live daemon on the demo feed -------------------------------------------
