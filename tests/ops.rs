@@ -37,10 +37,13 @@ const Z95: f64 = 1.959963984540054;
 /// Finds `name` on PATH. Missing: skip (None) or, under SCRIM_CI_REQUIRE_TOOLS=1, fail.
 fn tool(name: &str) -> Option<PathBuf> {
     let found = std::env::var_os("PATH").and_then(|paths| {
-        std::env::split_paths(&paths).map(|d| d.join(name)).find(|p| {
-            use std::os::unix::fs::PermissionsExt;
-            p.metadata().is_ok_and(|m| m.is_file() && m.permissions().mode() & 0o111 != 0)
-        })
+        std::env::split_paths(&paths)
+            .map(|d| d.join(name))
+            .find(|p| {
+                use std::os::unix::fs::PermissionsExt;
+                p.metadata()
+                    .is_ok_and(|m| m.is_file() && m.permissions().mode() & 0o111 != 0)
+            })
     });
     if found.is_none() {
         assert!(
@@ -65,10 +68,16 @@ fn command(program: impl AsRef<std::ffi::OsStr>) -> Command {
 
 /// Runs `cmd` to completion with `stdin` as input, killing it after `secs`.
 fn run_with_timeout(mut cmd: Command, stdin: Option<&[u8]>, secs: u64) -> Output {
-    cmd.stdin(if stdin.is_some() { Stdio::piped() } else { Stdio::null() })
-        .stdout(Stdio::piped())
-        .stderr(Stdio::piped());
-    let mut child = cmd.spawn().unwrap_or_else(|e| panic!("starting {cmd:?}: {e}"));
+    cmd.stdin(if stdin.is_some() {
+        Stdio::piped()
+    } else {
+        Stdio::null()
+    })
+    .stdout(Stdio::piped())
+    .stderr(Stdio::piped());
+    let mut child = cmd
+        .spawn()
+        .unwrap_or_else(|e| panic!("starting {cmd:?}: {e}"));
     if let Some(input) = stdin {
         let mut pipe = child.stdin.take().unwrap();
         let input = input.to_vec();
@@ -85,8 +94,18 @@ fn run_with_timeout(mut cmd: Command, stdin: Option<&[u8]>, secs: u64) -> Output
             buf
         })
     };
-    let out = drain(child.stdout.take().map(|s| Box::new(s) as Box<dyn Read + Send>));
-    let err = drain(child.stderr.take().map(|s| Box::new(s) as Box<dyn Read + Send>));
+    let out = drain(
+        child
+            .stdout
+            .take()
+            .map(|s| Box::new(s) as Box<dyn Read + Send>),
+    );
+    let err = drain(
+        child
+            .stderr
+            .take()
+            .map(|s| Box::new(s) as Box<dyn Read + Send>),
+    );
     let deadline = Instant::now() + Duration::from_secs(secs);
     let status = loop {
         if let Some(s) = child.try_wait().unwrap() {
@@ -99,7 +118,11 @@ fn run_with_timeout(mut cmd: Command, stdin: Option<&[u8]>, secs: u64) -> Output
         }
         std::thread::sleep(Duration::from_millis(50));
     };
-    Output { status, stdout: out.join().unwrap(), stderr: err.join().unwrap() }
+    Output {
+        status,
+        stdout: out.join().unwrap(),
+        stderr: err.join().unwrap(),
+    }
 }
 
 fn repo() -> &'static Path {
@@ -159,13 +182,28 @@ fn start_daemon(dir: &Path, cfg: &str) -> Daemon {
 fn get(addr: &str, path: &str) -> (u16, String) {
     let mut s = TcpStream::connect(addr).expect("connect http");
     s.set_read_timeout(Some(Duration::from_secs(10))).unwrap();
-    write!(s, "GET {path} HTTP/1.1\r\nHost: {addr}\r\nConnection: close\r\n\r\n").unwrap();
+    write!(
+        s,
+        "GET {path} HTTP/1.1\r\nHost: {addr}\r\nConnection: close\r\n\r\n"
+    )
+    .unwrap();
     let mut buf = Vec::new();
     s.read_to_end(&mut buf).unwrap();
     let text = String::from_utf8_lossy(&buf).into_owned();
-    let status = text.split_whitespace().nth(1).and_then(|c| c.parse().ok()).unwrap_or(0);
+    let status = text
+        .split_whitespace()
+        .nth(1)
+        .and_then(|c| c.parse().ok())
+        .unwrap_or(0);
     let (head, body) = text.split_once("\r\n\r\n").unwrap_or((&text, ""));
-    let body = if head.to_ascii_lowercase().contains("transfer-encoding: chunked") { dechunk(body) } else { body.to_string() };
+    let body = if head
+        .to_ascii_lowercase()
+        .contains("transfer-encoding: chunked")
+    {
+        dechunk(body)
+    } else {
+        body.to_string()
+    };
     (status, body)
 }
 
@@ -226,7 +264,10 @@ fn wait_until(mut f: impl FnMut() -> bool, secs: u64, what: &str) {
 }
 
 fn now_ms() -> i64 {
-    std::time::SystemTime::now().duration_since(std::time::UNIX_EPOCH).unwrap().as_millis() as i64
+    std::time::SystemTime::now()
+        .duration_since(std::time::UNIX_EPOCH)
+        .unwrap()
+        .as_millis() as i64
 }
 
 /// Runs headless Chromium with the flags the ops task fixes, plus `extra`; returns the DOM.
@@ -275,12 +316,17 @@ impl Tag {
         self.attrs.get(k).map(String::as_str)
     }
     fn has_class(&self, c: &str) -> bool {
-        self.attr("class").is_some_and(|v| v.split_whitespace().any(|x| x == c))
+        self.attr("class")
+            .is_some_and(|v| v.split_whitespace().any(|x| x == c))
     }
 }
 
 fn unescape(s: &str) -> String {
-    s.replace("&quot;", "\"").replace("&lt;", "<").replace("&gt;", ">").replace("&#39;", "'").replace("&amp;", "&")
+    s.replace("&quot;", "\"")
+        .replace("&lt;", "<")
+        .replace("&gt;", ">")
+        .replace("&#39;", "'")
+        .replace("&amp;", "&")
 }
 
 /// Start tags in document order. Chromium serialises attributes as `name="value"` with
@@ -333,9 +379,16 @@ fn tags(html: &str) -> Vec<Tag> {
         let end = html[j..].find('>').map_or(b.len(), |c| j + c + 1);
         i = end;
         if name == "script" || name == "style" {
-            i = html[end..].find(&format!("</{name}")).map_or(b.len(), |c| end + c);
+            i = html[end..]
+                .find(&format!("</{name}"))
+                .map_or(b.len(), |c| end + c);
         }
-        out.push(Tag { name, attrs, start, end });
+        out.push(Tag {
+            name,
+            attrs,
+            start,
+            end,
+        });
     }
     out
 }
@@ -347,16 +400,22 @@ fn text_after(html: &str, t: &Tag) -> String {
 }
 
 fn by_id<'a>(all: &'a [Tag], id: &str) -> &'a Tag {
-    all.iter().find(|t| t.attr("id") == Some(id)).unwrap_or_else(|| panic!("no #{id} in the DOM"))
+    all.iter()
+        .find(|t| t.attr("id") == Some(id))
+        .unwrap_or_else(|| panic!("no #{id} in the DOM"))
 }
 
 /// Tags inside a `<section>` (the series panels hold no nested sections).
 fn inside_section<'a>(html: &str, all: &'a [Tag], section: &Tag) -> Vec<&'a Tag> {
-    let close = html[section.end..].find("</section>").map_or(html.len(), |c| section.end + c);
-    all.iter().filter(|t| t.start > section.start && t.start < close).collect()
+    let close = html[section.end..]
+        .find("</section>")
+        .map_or(html.len(), |c| section.end + c);
+    all.iter()
+        .filter(|t| t.start > section.start && t.start < close)
+        .collect()
 }
 
-fn panels<'a>(all: &'a [Tag]) -> BTreeMap<String, &'a Tag> {
+fn panels(all: &[Tag]) -> BTreeMap<String, &Tag> {
     all.iter()
         .filter(|t| t.name == "section" && t.has_class("series-panel"))
         .map(|t| (t.attr("data-stat").unwrap_or_default().to_string(), t))
@@ -394,7 +453,11 @@ fn anchor(heading: &str) -> String {
 }
 
 fn runbook_anchors() -> BTreeSet<String> {
-    RUNBOOK.lines().filter_map(|l| l.strip_prefix("## ").or_else(|| l.strip_prefix("# "))).map(anchor).collect()
+    RUNBOOK
+        .lines()
+        .filter_map(|l| l.strip_prefix("## ").or_else(|| l.strip_prefix("# ")))
+        .map(anchor)
+        .collect()
 }
 
 #[test]
@@ -418,22 +481,50 @@ fn every_required_alert_is_defined_documented_and_linked_to_its_runbook_section(
     assert_eq!(names, expected);
     let anchors = runbook_anchors();
     for (name, block) in &blocks {
-        for key in ["expr:", "for:", "severity:", "summary:", "description:", "runbook_url:"] {
+        for key in [
+            "expr:",
+            "for:",
+            "severity:",
+            "summary:",
+            "description:",
+            "runbook_url:",
+        ] {
             assert!(block.contains(key), "{name} lacks {key}");
         }
-        let severity = block.lines().find_map(|l| l.trim().strip_prefix("severity:")).unwrap().trim();
-        assert!(["warning", "critical"].contains(&severity), "{name}: severity {severity}");
+        let severity = block
+            .lines()
+            .find_map(|l| l.trim().strip_prefix("severity:"))
+            .unwrap()
+            .trim();
+        assert!(
+            ["warning", "critical"].contains(&severity),
+            "{name}: severity {severity}"
+        );
         let url = format!("runbook_url: \"ops/RUNBOOK.md#{}\"", name.to_lowercase());
         assert!(block.contains(&url), "{name} must link {url}");
-        assert!(anchors.contains(&name.to_lowercase()), "RUNBOOK.md has no section '## {name}'");
+        assert!(
+            anchors.contains(&name.to_lowercase()),
+            "RUNBOOK.md has no section '## {name}'"
+        );
     }
     // The runbook's own links point at sections that exist.
     for part in RUNBOOK.split("](#").skip(1) {
         let target = &part[..part.find(')').unwrap()];
-        assert!(anchors.contains(target), "RUNBOOK.md links #{target}, which is no heading");
+        assert!(
+            anchors.contains(target),
+            "RUNBOOK.md links #{target}, which is no heading"
+        );
     }
     // What never to do is spelled out.
-    for must in ["state directory", "lifetime_rho", "replay old data", "--insecure-seed", "journalctl", "/v1/budget", "/metrics"] {
+    for must in [
+        "state directory",
+        "lifetime_rho",
+        "replay old data",
+        "--insecure-seed",
+        "journalctl",
+        "/v1/budget",
+        "/metrics",
+    ] {
         assert!(RUNBOOK.contains(must), "RUNBOOK.md should mention {must}");
     }
 }
@@ -444,8 +535,14 @@ fn every_alert_has_a_firing_and_a_quiet_unit_test() {
     let mut quiet = BTreeSet::new();
     let lines: Vec<&str> = ALERT_TESTS.lines().collect();
     for (i, l) in lines.iter().enumerate() {
-        let Some(name) = l.trim().strip_prefix("alertname:") else { continue };
-        let next = lines[i + 1..].iter().map(|l| l.trim()).find(|l| !l.is_empty() && !l.starts_with('#')).unwrap();
+        let Some(name) = l.trim().strip_prefix("alertname:") else {
+            continue;
+        };
+        let next = lines[i + 1..]
+            .iter()
+            .map(|l| l.trim())
+            .find(|l| !l.is_empty() && !l.starts_with('#'))
+            .unwrap();
         match next {
             "exp_alerts: []" => quiet.insert(name.trim().to_string()),
             "exp_alerts:" => firing.insert(name.trim().to_string()),
@@ -453,15 +550,26 @@ fn every_alert_has_a_firing_and_a_quiet_unit_test() {
         };
     }
     for (name, _) in alert_blocks(ALERTS) {
-        assert!(firing.contains(&name), "{name} has no firing test in ops/alerts.test.yml");
-        assert!(quiet.contains(&name), "{name} has no not-firing test in ops/alerts.test.yml");
+        assert!(
+            firing.contains(&name),
+            "{name} has no firing test in ops/alerts.test.yml"
+        );
+        assert!(
+            quiet.contains(&name),
+            "{name} has no not-firing test in ops/alerts.test.yml"
+        );
     }
 }
 
 #[test]
 fn alert_rules_pass_promtool_check_and_unit_tests() {
-    let Some(promtool) = tool("promtool") else { return };
-    for args in [["check", "rules", "ops/alerts.yml"], ["test", "rules", "ops/alerts.test.yml"]] {
+    let Some(promtool) = tool("promtool") else {
+        return;
+    };
+    for args in [
+        ["check", "rules", "ops/alerts.yml"],
+        ["test", "rules", "ops/alerts.test.yml"],
+    ] {
         let mut cmd = command(&promtool);
         cmd.args(args).current_dir(repo());
         let out = run_with_timeout(cmd, None, 120);
@@ -480,7 +588,9 @@ fn rule_exprs(yaml: &str) -> Vec<String> {
     let lines: Vec<&str> = yaml.lines().collect();
     let mut out = Vec::new();
     for (i, l) in lines.iter().enumerate() {
-        let Some(rest) = l.trim_start().strip_prefix("expr:") else { continue };
+        let Some(rest) = l.trim_start().strip_prefix("expr:") else {
+            continue;
+        };
         let rest = rest.trim();
         if rest.starts_with('|') || rest.starts_with('>') {
             let indent = l.len() - l.trim_start().len();
@@ -502,9 +612,28 @@ fn rule_exprs(yaml: &str) -> Vec<String> {
 fn expr_metric_names(expr: &str) -> BTreeSet<String> {
     const KEYWORDS: [&str; 5] = ["and", "or", "unless", "bool", "offset"];
     // Aggregation operators may put `by (...)` between their name and their parentheses.
-    const AGGREGATORS: [&str; 12] =
-        ["sum", "min", "max", "avg", "count", "stddev", "stdvar", "topk", "bottomk", "quantile", "count_values", "group"];
-    const GROUPING: [&str; 6] = ["by", "on", "without", "ignoring", "group_left", "group_right"];
+    const AGGREGATORS: [&str; 12] = [
+        "sum",
+        "min",
+        "max",
+        "avg",
+        "count",
+        "stddev",
+        "stdvar",
+        "topk",
+        "bottomk",
+        "quantile",
+        "count_values",
+        "group",
+    ];
+    const GROUPING: [&str; 6] = [
+        "by",
+        "on",
+        "without",
+        "ignoring",
+        "group_left",
+        "group_right",
+    ];
     // Drop string literals, label matchers and range selectors first.
     let mut cleaned = String::new();
     let mut depth: Option<char> = None;
@@ -537,14 +666,19 @@ fn expr_metric_names(expr: &str) -> BTreeSet<String> {
         }
         if c.is_ascii_alphabetic() || c == '_' || c == ':' {
             let s = i;
-            while i < chars.len() && (chars[i].is_ascii_alphanumeric() || chars[i] == '_' || chars[i] == ':') {
+            while i < chars.len()
+                && (chars[i].is_ascii_alphanumeric() || chars[i] == '_' || chars[i] == ':')
+            {
                 i += 1;
             }
             let word: String = chars[s..i].iter().collect();
             let next = chars[i..].iter().find(|c| !c.is_whitespace()).copied();
             if GROUPING.contains(&word.as_str()) {
                 skip_group = true;
-            } else if !(KEYWORDS.contains(&word.as_str()) || AGGREGATORS.contains(&word.as_str()) || next == Some('(')) {
+            } else if !(KEYWORDS.contains(&word.as_str())
+                || AGGREGATORS.contains(&word.as_str())
+                || next == Some('('))
+            {
                 names.insert(word);
             }
             continue;
@@ -567,7 +701,10 @@ fn the_metric_name_extractor_reads_promql() {
     let got = expr_metric_names(
         "sum by (job, instance) (rate(a_total{outcome=\"rejected\"}[15m])) / on (job) b_seconds > 1e-3 and c unless d:rec == 1",
     );
-    let want: BTreeSet<String> = ["a_total", "b_seconds", "c", "d:rec"].iter().map(|s| s.to_string()).collect();
+    let want: BTreeSet<String> = ["a_total", "b_seconds", "c", "d:rec"]
+        .iter()
+        .map(|s| s.to_string())
+        .collect();
     assert_eq!(got, want);
 }
 
@@ -613,42 +750,71 @@ zone = ["harbour", "uplands"]
     let mut feed = String::new();
     for i in 0..40 {
         let zone = if i % 3 == 0 { "uplands" } else { "harbour" };
-        feed.push_str(&format!("{{\"ts\":{},\"card\":\"c-{}\",\"zone\":\"{zone}\"}}\n", t - 3_600_000 + i * 1000, i % 7));
+        feed.push_str(&format!(
+            "{{\"ts\":{},\"card\":\"c-{}\",\"zone\":\"{zone}\"}}\n",
+            t - 3_600_000 + i * 1000,
+            i % 7
+        ));
     }
     feed.push_str("not json\n{\"ts\":1,\"card\":\"c-1\",\"zone\":\"atlantis\"}\n");
     std::fs::write(dir.path().join("feed.jsonl"), &feed).unwrap();
     let d = start_daemon(dir.path(), &feed_config(dir.path(), body));
     let total = |m: &str| {
-        ["accepted", "rejected", "late"].iter().map(|o| metric(m, &format!("scrim_events_total{{outcome=\"{o}\"}}"))).sum::<f64>()
+        ["accepted", "rejected", "late"]
+            .iter()
+            .map(|o| metric(m, &format!("scrim_events_total{{outcome=\"{o}\"}}")))
+            .sum::<f64>()
     };
-    wait_until(|| total(&get(&d.http, "/metrics").1) == 42.0, 60, "all 42 lines counted");
+    wait_until(
+        || total(&get(&d.http, "/metrics").1) == 42.0,
+        60,
+        "all 42 lines counted",
+    );
     let (status, text) = get(&d.http, "/metrics");
     assert_eq!(status, 200);
 
     // Every metric the rules read is exported (names from `# TYPE` lines). Recording rules
     // (`a:b:c`) must be defined in the same file; `up` is made by Prometheus per target.
-    let exported: BTreeSet<&str> =
-        text.lines().filter_map(|l| l.strip_prefix("# TYPE ")).filter_map(|l| l.split_whitespace().next()).collect();
-    let recorded: BTreeSet<String> =
-        ALERTS.lines().filter_map(|l| l.trim().strip_prefix("- record:")).map(|r| r.trim().to_string()).collect();
+    let exported: BTreeSet<&str> = text
+        .lines()
+        .filter_map(|l| l.strip_prefix("# TYPE "))
+        .filter_map(|l| l.split_whitespace().next())
+        .collect();
+    let recorded: BTreeSet<String> = ALERTS
+        .lines()
+        .filter_map(|l| l.trim().strip_prefix("- record:"))
+        .map(|r| r.trim().to_string())
+        .collect();
     let mut used = BTreeSet::new();
     for e in rule_exprs(ALERTS) {
         used.extend(expr_metric_names(&e));
     }
     // Guard against a parser that finds nothing: these are certainly used.
-    for sure in ["scrim_budget_remaining_rho", "scrim_events_total", "scrim_last_release_timestamp_seconds"] {
+    for sure in [
+        "scrim_budget_remaining_rho",
+        "scrim_events_total",
+        "scrim_last_release_timestamp_seconds",
+    ] {
         assert!(used.contains(sure), "extractor missed {sure}: {used:?}");
     }
     for name in &used {
         if name.contains(':') {
-            assert!(recorded.contains(name), "{name} is used but no recording rule defines it");
+            assert!(
+                recorded.contains(name),
+                "{name} is used but no recording rule defines it"
+            );
         } else if name != "up" {
-            assert!(exported.contains(name.as_str()), "ops/alerts.yml reads {name}, which /metrics does not export:\n{text}");
+            assert!(
+                exported.contains(name.as_str()),
+                "ops/alerts.yml reads {name}, which /metrics does not export:\n{text}"
+            );
         }
     }
 
     // promtool's own lint of the exposition format and naming conventions.
-    let Some(promtool) = tool("promtool") else { return };
+    let Some(promtool) = tool("promtool") else {
+        return;
+    };
     let mut cmd = command(&promtool);
     cmd.args(["check", "metrics"]);
     let out = run_with_timeout(cmd, Some(text.as_bytes()), 60);
@@ -674,13 +840,18 @@ fn systemd_unit_has_the_required_hardening_and_verifies() {
             m
         });
     let one = |k: &str| -> &str {
-        let v = directives.get(k).unwrap_or_else(|| panic!("scrim.service lacks {k}="));
+        let v = directives
+            .get(k)
+            .unwrap_or_else(|| panic!("scrim.service lacks {k}="));
         v.last().unwrap()
     };
     // What the ops task asks for.
     assert_eq!(one("User"), "scrim");
     assert_eq!(one("DynamicUser"), "no");
-    assert_eq!(one("ExecStart"), "/usr/local/bin/scrim run --config /etc/scrim/scrim.toml");
+    assert_eq!(
+        one("ExecStart"),
+        "/usr/local/bin/scrim run --config /etc/scrim/scrim.toml"
+    );
     assert_eq!(one("StateDirectory"), "scrim");
     assert_eq!(one("StateDirectoryMode"), "0700");
     assert_eq!(one("ProtectSystem"), "strict");
@@ -698,9 +869,17 @@ fn systemd_unit_has_the_required_hardening_and_verifies() {
     // Exit 2 (bad config / mismatched state) and 3 (over budget) are refusals, not crashes.
     assert_eq!(one("RestartPreventExitStatus"), "2 3");
     // No SCRIM_ variable in the unit's environment: they are config overrides.
-    assert!(directives.get("Environment").into_iter().flatten().all(|e| !e.contains("SCRIM_")));
+    assert!(
+        directives
+            .get("Environment")
+            .into_iter()
+            .flatten()
+            .all(|e| !e.contains("SCRIM_"))
+    );
 
-    let Some(analyze) = tool("systemd-analyze") else { return };
+    let Some(analyze) = tool("systemd-analyze") else {
+        return;
+    };
     let dir = tempfile::tempdir().unwrap();
     // verify checks that ExecStart is executable: point it at the binary this build made.
     let unit = UNIT.replace("/usr/local/bin/scrim", env!("CARGO_BIN_EXE_scrim"));
@@ -709,22 +888,38 @@ fn systemd_unit_has_the_required_hardening_and_verifies() {
     let mut cmd = command(&analyze);
     cmd.arg("verify").arg(&path);
     let out = run_with_timeout(cmd, None, 60);
-    let msgs = format!("{}{}", String::from_utf8_lossy(&out.stdout), String::from_utf8_lossy(&out.stderr));
-    assert!(out.status.success() && !msgs.contains("Unknown key"), "systemd-analyze verify:\n{msgs}");
+    let msgs = format!(
+        "{}{}",
+        String::from_utf8_lossy(&out.stdout),
+        String::from_utf8_lossy(&out.stderr)
+    );
+    assert!(
+        out.status.success() && !msgs.contains("Unknown key"),
+        "systemd-analyze verify:\n{msgs}"
+    );
     // systemd's own exposure rating of the sandbox ("OK" or better on its scale).
     let mut cmd = command(&analyze);
-    cmd.args(["security", "--offline=yes", "--no-pager"]).arg(&path);
+    cmd.args(["security", "--offline=yes", "--no-pager"])
+        .arg(&path);
     let out = run_with_timeout(cmd, None, 60);
     let text = String::from_utf8_lossy(&out.stdout);
     let rating = text
         .lines()
         .find_map(|l| l.split_once("Overall exposure level for scrim.service:"))
         .map(|(_, r)| r.trim().to_string())
-        .unwrap_or_else(|| panic!("no overall exposure in:\n{text}{}", String::from_utf8_lossy(&out.stderr)));
+        .unwrap_or_else(|| {
+            panic!(
+                "no overall exposure in:\n{text}{}",
+                String::from_utf8_lossy(&out.stderr)
+            )
+        });
     let mut parts = rating.split_whitespace();
     let score: f64 = parts.next().unwrap().parse().unwrap();
     let word = parts.next().unwrap_or_default();
-    assert!(matches!(word, "OK" | "SAFE") && score < 3.0, "exposure {rating}");
+    assert!(
+        matches!(word, "OK" | "SAFE") && score < 3.0,
+        "exposure {rating}"
+    );
 }
 
 // ---- dashboard: fixtures -----------------------------------------------------------------
@@ -735,7 +930,10 @@ fn dashboard_band_quantile_matches_statrs() {
     let n = Normal::new(0.0, 1.0).unwrap();
     assert!((n.inverse_cdf(0.975) - Z95).abs() < 1e-9);
     let in_page = format!("const Z95 = {Z95};");
-    assert!(DASHBOARD.contains(&in_page), "the page must use Z95 = {Z95}");
+    assert!(
+        DASHBOARD.contains(&in_page),
+        "the page must use Z95 = {Z95}"
+    );
 }
 
 #[test]
@@ -744,12 +942,18 @@ fn dashboard_is_self_contained() {
     for (i, _) in DASHBOARD.match_indices("://") {
         let before = &DASHBOARD[i.saturating_sub(5)..i];
         let after = &DASHBOARD[i..(i + 40).min(DASHBOARD.len())];
-        assert!(after.starts_with("://www.w3.org/2000/svg") && before.ends_with("http"), "external reference near {before}{after}");
+        assert!(
+            after.starts_with("://www.w3.org/2000/svg") && before.ends_with("http"),
+            "external reference near {before}{after}"
+        );
     }
     for banned in ["<script src", "<link", "@import", "innerHTML"] {
         assert!(!DASHBOARD.contains(banned), "dashboard contains {banned}");
     }
-    assert!(DASHBOARD.contains("connect-src 'self'"), "the CSP keeps fetches on the serving origin");
+    assert!(
+        DASHBOARD.contains("connect-src 'self'"),
+        "the CSP keeps fetches on the serving origin"
+    );
 }
 
 /// One fixture API: what `/v1/budget` returns and the records behind `/v1/releases`.
@@ -760,7 +964,10 @@ struct Scenario {
 
 /// Serves `/<name>/` (the page), `/<name>/v1/budget` and `/<name>/v1/releases` for every
 /// scenario, pages capped at `page_cap` records, and logs every request target.
-fn serve_fixtures(scenarios: BTreeMap<&'static str, Scenario>, page_cap: usize) -> (String, Arc<Mutex<Vec<String>>>) {
+fn serve_fixtures(
+    scenarios: BTreeMap<&'static str, Scenario>,
+    page_cap: usize,
+) -> (String, Arc<Mutex<Vec<String>>>) {
     let listener = TcpListener::bind("127.0.0.1:0").unwrap();
     let addr = listener.local_addr().unwrap().to_string();
     let log = Arc::new(Mutex::new(Vec::new()));
@@ -783,7 +990,12 @@ fn serve_fixtures(scenarios: BTreeMap<&'static str, Scenario>, page_cap: usize) 
                 let target = head.split_whitespace().nth(1).unwrap_or("/").to_string();
                 log.lock().unwrap().push(target.clone());
                 let (path, query) = target.split_once('?').unwrap_or((&target, ""));
-                let param = |k: &str| query.split('&').find_map(|kv| kv.strip_prefix(&format!("{k}="))).map(str::to_string);
+                let param = |k: &str| {
+                    query
+                        .split('&')
+                        .find_map(|kv| kv.strip_prefix(&format!("{k}=")))
+                        .map(str::to_string)
+                };
                 let mut parts = path.trim_start_matches('/').splitn(2, '/');
                 let name = parts.next().unwrap_or_default();
                 let rest = parts.next().unwrap_or_default();
@@ -792,11 +1004,22 @@ fn serve_fixtures(scenarios: BTreeMap<&'static str, Scenario>, page_cap: usize) 
                     (Some(s), "v1/budget") => (200, "application/json", s.budget.to_string()),
                     (Some(s), "v1/releases") => {
                         let after: Option<u64> = param("after").and_then(|a| a.parse().ok());
-                        let limit: usize = param("limit").and_then(|a| a.parse().ok()).unwrap_or(500).min(page_cap);
-                        let page: Vec<&Value> =
-                            s.releases.iter().filter(|r| after.is_none_or(|a| r["seq"].as_u64().unwrap() > a)).take(limit).collect();
+                        let limit: usize = param("limit")
+                            .and_then(|a| a.parse().ok())
+                            .unwrap_or(500)
+                            .min(page_cap);
+                        let page: Vec<&Value> = s
+                            .releases
+                            .iter()
+                            .filter(|r| after.is_none_or(|a| r["seq"].as_u64().unwrap() > a))
+                            .take(limit)
+                            .collect();
                         let next = page.last().map(|r| r["seq"].as_u64().unwrap()).or(after);
-                        (200, "application/json", json!({ "releases": page, "next_after": next }).to_string())
+                        (
+                            200,
+                            "application/json",
+                            json!({ "releases": page, "next_after": next }).to_string(),
+                        )
                     }
                     _ => (404, "text/plain", "not found".to_string()),
                 };
@@ -815,7 +1038,8 @@ const HOUR_MS: i64 = 3_600_000;
 
 fn iso(ms: i64) -> String {
     let t = time::OffsetDateTime::from_unix_timestamp_nanos(i128::from(ms) * 1_000_000).unwrap();
-    t.format(&time::format_description::well_known::Rfc3339).unwrap()
+    t.format(&time::format_description::well_known::Rfc3339)
+        .unwrap()
 }
 
 /// Two days of hourly records for four statistics (the Quillhaven demo's shapes): a count
@@ -836,27 +1060,39 @@ fn fixture_releases(seeded_leaf: Option<i64>) -> Vec<Value> {
         let (start, end) = (iso(t0 + h * HOUR_MS), iso(t0 + (h + 1) * HOUR_MS));
         for zone in ["harbour", "uplands"] {
             let bump = if zone == "uplands" { 10.0 } else { 0.0 };
-            let value = if h == 47 && zone == "harbour" { 131.2 } else { 100.0 + 50.0 * (h as f64 / 4.0).sin() + bump };
-            push(json!({"stat": "taps_by_zone", "kind": "count", "scope": "window", "group": {"zone": zone},
+            let value = if h == 47 && zone == "harbour" {
+                131.2
+            } else {
+                100.0 + 50.0 * (h as f64 / 4.0).sin() + bump
+            };
+            push(
+                json!({"stat": "taps_by_zone", "kind": "count", "scope": "window", "group": {"zone": zone},
                         "window_start": start, "window_end": end, "value": value, "std_error": 5.9,
-                        "epoch": 0, "leaf": h, "seeded": seeded_leaf == Some(h)}));
-            push(json!({"stat": "taps_by_zone", "kind": "count", "scope": "epoch_to_date", "group": {"zone": zone},
+                        "epoch": 0, "leaf": h, "seeded": seeded_leaf == Some(h)}),
+            );
+            push(
+                json!({"stat": "taps_by_zone", "kind": "count", "scope": "epoch_to_date", "group": {"zone": zone},
                         "window_start": iso(t0), "window_end": end, "value": 100.0 * (h + 1) as f64,
-                        "std_error": 5.9 * ((h + 2) as f64).log2(), "epoch": 0, "leaf": h, "seeded": false}));
+                        "std_error": 5.9 * ((h + 2) as f64).log2(), "epoch": 0, "leaf": h, "seeded": false}),
+            );
         }
         let undefined = [10, 11, 30].contains(&h);
-        push(json!({"stat": "trip_minutes_mean", "kind": "mean", "scope": "window", "group": {},
+        push(
+            json!({"stat": "trip_minutes_mean", "kind": "mean", "scope": "window", "group": {},
                     "window_start": start, "window_end": end,
                     "value": if undefined { Value::Null } else { json!(14.0 + (h as f64 / 5.0).cos()) },
                     "std_error": if undefined { Value::Null } else { json!(0.8) },
                     "note": if undefined { "noisy count below 1: the mean is undefined for this scope" } else { "std_error by the delta method (first order)" },
-                    "epoch": 0, "leaf": h, "seeded": false}));
+                    "epoch": 0, "leaf": h, "seeded": false}),
+        );
         let no_fit = h == 20;
-        push(json!({"stat": "trip_model", "kind": "linear", "scope": "window", "group": {},
+        push(
+            json!({"stat": "trip_model", "kind": "linear", "scope": "window", "group": {},
                     "window_start": start, "window_end": end,
                     "value": if no_fit { Value::Null } else { json!({"intercept": 4.0 + 0.1 * (h as f64).sin(), "boardings": 0.7, "transfers": 3.1, "trip_km": 2.6 + 0.05 * (h as f64).cos()}) },
                     "std_error": if no_fit { Value::Null } else { json!({"intercept": 0.4, "boardings": 0.2, "transfers": 0.3, "trip_km": 0.05}) },
-                    "epoch": 0, "leaf": h, "seeded": false}));
+                    "epoch": 0, "leaf": h, "seeded": false}),
+        );
     }
     out
 }
@@ -885,7 +1121,9 @@ fn fixture_scenarios() -> BTreeMap<&'static str, Scenario> {
         ("epoch_windows_closed", json!(0)),
         (
             "exhausted",
-            json!("lifetime budget exhausted: epoch 8 needs rho 0.5 but only 0 of privacy.lifetime_rho = 4 remains"),
+            json!(
+                "lifetime budget exhausted: epoch 8 needs rho 0.5 but only 0 of privacy.lifetime_rho = 4 remains"
+            ),
         ),
     ] {
         exhausted[k] = v;
@@ -907,10 +1145,34 @@ fn fixture_scenarios() -> BTreeMap<&'static str, Scenario> {
         fresh[k] = v;
     }
     BTreeMap::from([
-        ("unit", Scenario { budget: unit, releases: fixture_releases(Some(3)) }),
-        ("fresh", Scenario { budget: fresh, releases: Vec::new() }),
-        ("exhausted", Scenario { budget: exhausted, releases: fixture_releases(None)[..40].to_vec() }),
-        ("event", Scenario { budget: event, releases: Vec::new() }),
+        (
+            "unit",
+            Scenario {
+                budget: unit,
+                releases: fixture_releases(Some(3)),
+            },
+        ),
+        (
+            "fresh",
+            Scenario {
+                budget: fresh,
+                releases: Vec::new(),
+            },
+        ),
+        (
+            "exhausted",
+            Scenario {
+                budget: exhausted,
+                releases: fixture_releases(None)[..40].to_vec(),
+            },
+        ),
+        (
+            "event",
+            Scenario {
+                budget: event,
+                releases: Vec::new(),
+            },
+        ),
     ])
 }
 
@@ -921,15 +1183,28 @@ fn subpaths(d: &str) -> usize {
 
 fn assert_healthy_page(html: &str, all: &[Tag]) {
     let body = all.iter().find(|t| t.name == "body").unwrap();
-    assert_eq!(body.attr("data-loaded"), Some("1"), "the first render did not complete");
-    assert!(by_id(all, "banner-error").attrs.contains_key("hidden"), "error banner shown");
+    assert_eq!(
+        body.attr("data-loaded"),
+        Some("1"),
+        "the first render did not complete"
+    );
+    assert!(
+        by_id(all, "banner-error").attrs.contains_key("hidden"),
+        "error banner shown"
+    );
     let errors = by_id(all, "js-errors");
-    assert!(text_after(html, errors).trim().is_empty(), "script errors: {}", text_after(html, errors));
+    assert!(
+        text_after(html, errors).trim().is_empty(),
+        "script errors: {}",
+        text_after(html, errors)
+    );
 }
 
 #[test]
 fn dashboard_renders_the_unit_level_fixture_with_paging_bands_gaps_and_budget() {
-    let Some(chromium) = tool("chromium") else { return };
+    let Some(chromium) = tool("chromium") else {
+        return;
+    };
     let scenarios = fixture_scenarios();
     let n_records = scenarios["unit"].releases.len();
     let releases = scenarios["unit"].releases.clone();
@@ -942,7 +1217,10 @@ fn dashboard_renders_the_unit_level_fixture_with_paging_bands_gaps_and_budget() 
     let all = tags(&html);
     assert_healthy_page(&html, &all);
     let body = all.iter().find(|t| t.name == "body").unwrap();
-    assert_eq!(body.attr("data-records"), Some(n_records.to_string().as_str()));
+    assert_eq!(
+        body.attr("data-records"),
+        Some(n_records.to_string().as_str())
+    );
 
     // Cursor: first page without `after`, then after = last seq of the previous page, until
     // a page is empty; later polls resume from the same cursor (contract.md, HTTP).
@@ -951,14 +1229,26 @@ fn dashboard_renders_the_unit_level_fixture_with_paging_bands_gaps_and_budget() 
         .unwrap()
         .iter()
         .filter(|t| t.starts_with("/unit/v1/releases"))
-        .map(|t| t.split(['?', '&']).find_map(|kv| kv.strip_prefix("after=")).map(|a| a.parse().unwrap()))
+        .map(|t| {
+            t.split(['?', '&'])
+                .find_map(|kv| kv.strip_prefix("after="))
+                .map(|a| a.parse().unwrap())
+        })
         .collect();
     let n_pages = n_records.div_ceil(page_cap);
     let mut want: Vec<Option<u64>> = vec![None];
     want.extend((1..=n_pages).map(|p| Some(((p * page_cap).min(n_records) - 1) as u64)));
-    assert!(afters.len() > want.len(), "no poll after the first pull: {afters:?}");
+    assert!(
+        afters.len() > want.len(),
+        "no poll after the first pull: {afters:?}"
+    );
     assert_eq!(afters[..want.len()], want[..], "cursor sequence");
-    assert!(afters[want.len()..].iter().all(|a| *a == Some(n_records as u64 - 1)), "{afters:?}");
+    assert!(
+        afters[want.len()..]
+            .iter()
+            .all(|a| *a == Some(n_records as u64 - 1)),
+        "{afters:?}"
+    );
 
     // Budget gauge: 1.0 of 4.0 spent. The arc ends at angle π(1 − 1/4) on a radius-90 circle
     // centred at (110, 110): (110 + 90 cos 135°, 110 − 90 sin 135°) = (46.36, 46.36).
@@ -969,7 +1259,10 @@ fn dashboard_renders_the_unit_level_fixture_with_paging_bands_gaps_and_budget() 
     let arc = all.iter().find(|t| t.has_class("gauge-value")).unwrap();
     assert_eq!(arc.attr("d"), Some("M 20 110 A 90 90 0 0 1 46.36 46.36"));
     let progress = by_id(&all, "epoch-progress");
-    assert_eq!((progress.attr("data-closed"), progress.attr("data-total")), (Some("100"), Some("720")));
+    assert_eq!(
+        (progress.attr("data-closed"), progress.attr("data-total")),
+        (Some("100"), Some("720"))
+    );
     assert_eq!(text_after(&html, by_id(&all, "epochs")), "2 of 8");
 
     // Projection: an epoch is charged when its first window closes (src/engine/core.rs,
@@ -982,93 +1275,200 @@ fn dashboard_renders_the_unit_level_fixture_with_paging_bands_gaps_and_budget() 
     assert_eq!(eta.attr("data-window-ms"), Some("3600000"));
     let at: i64 = eta.attr("data-eta-ms").unwrap().parse().unwrap();
     let ahead = 4940 * HOUR_MS;
-    assert!(at >= t_before + ahead - 1000 && at <= t_after + ahead + 16_000, "eta {at} vs [{t_before}, {t_after}] + {ahead}");
+    assert!(
+        at >= t_before + ahead - 1000 && at <= t_after + ahead + 16_000,
+        "eta {at} vs [{t_before}, {t_after}] + {ahead}"
+    );
 
-    for (name, n) in [("accepted", "12345"), ("rejected", "67"), ("late", "8"), ("bounded", "90")] {
-        let tile = all.iter().find(|t| t.attr("data-count") == Some(name)).unwrap();
+    for (name, n) in [
+        ("accepted", "12345"),
+        ("rejected", "67"),
+        ("late", "8"),
+        ("bounded", "90"),
+    ] {
+        let tile = all
+            .iter()
+            .find(|t| t.attr("data-count") == Some(name))
+            .unwrap();
         assert_eq!(tile.attr("data-value"), Some(n), "{name}");
     }
-    assert!(!by_id(&all, "banner-seeded").attrs.contains_key("hidden"), "a seeded record must raise the banner");
+    assert!(
+        !by_id(&all, "banner-seeded").attrs.contains_key("hidden"),
+        "a seeded record must raise the banner"
+    );
     assert!(by_id(&all, "banner-exhausted").attrs.contains_key("hidden"));
 
     // One panel per statistic, in the budget's order, including one without releases yet.
     let p = panels(&all);
-    assert_eq!(p.keys().map(String::as_str).collect::<Vec<_>>(), ["fare_revenue", "taps_by_zone", "trip_minutes_mean", "trip_model"]);
+    assert_eq!(
+        p.keys().map(String::as_str).collect::<Vec<_>>(),
+        [
+            "fare_revenue",
+            "taps_by_zone",
+            "trip_minutes_mean",
+            "trip_model"
+        ]
+    );
     assert_eq!(p["fare_revenue"].attr("data-points"), Some("0"));
 
     // Count: default group (first in code-point order) and scope "window", 48 points, one
     // unbroken line, a band covering value ± 1.96·se everywhere, latest shown with its band.
     let inner = inside_section(&html, &all, p["taps_by_zone"]);
     assert_eq!(p["taps_by_zone"].attr("data-points"), Some("48"));
-    let line = inner.iter().find(|t| t.name == "path" && t.has_class("line")).unwrap();
+    let line = inner
+        .iter()
+        .find(|t| t.name == "path" && t.has_class("line"))
+        .unwrap();
     assert_eq!(subpaths(line.attr("d").unwrap()), 1);
     assert_eq!(line.attr("data-runs"), Some("1"));
-    let band = inner.iter().find(|t| t.name == "path" && t.has_class("band")).unwrap();
+    let band = inner
+        .iter()
+        .find(|t| t.name == "path" && t.has_class("band"))
+        .unwrap();
     assert!(band.attr("d").unwrap().ends_with('Z') && subpaths(band.attr("d").unwrap()) == 1);
-    let svg = inner.iter().find(|t| t.name == "svg" && t.has_class("chart-svg")).unwrap();
-    let (y_min, y_max): (f64, f64) = (svg.attr("data-y-min").unwrap().parse().unwrap(), svg.attr("data-y-max").unwrap().parse().unwrap());
-    for r in releases.iter().filter(|r| r["stat"] == "taps_by_zone" && r["scope"] == "window" && r["group"]["zone"] == "harbour") {
-        let (v, se) = (r["value"].as_f64().unwrap(), r["std_error"].as_f64().unwrap());
-        assert!(y_min <= v - Z95 * se && v + Z95 * se <= y_max, "band {v}±{} outside [{y_min}, {y_max}]", Z95 * se);
+    let svg = inner
+        .iter()
+        .find(|t| t.name == "svg" && t.has_class("chart-svg"))
+        .unwrap();
+    let (y_min, y_max): (f64, f64) = (
+        svg.attr("data-y-min").unwrap().parse().unwrap(),
+        svg.attr("data-y-max").unwrap().parse().unwrap(),
+    );
+    for r in releases.iter().filter(|r| {
+        r["stat"] == "taps_by_zone" && r["scope"] == "window" && r["group"]["zone"] == "harbour"
+    }) {
+        let (v, se) = (
+            r["value"].as_f64().unwrap(),
+            r["std_error"].as_f64().unwrap(),
+        );
+        assert!(
+            y_min <= v - Z95 * se && v + Z95 * se <= y_max,
+            "band {v}±{} outside [{y_min}, {y_max}]",
+            Z95 * se
+        );
     }
     let latest = inner.iter().find(|t| t.has_class("latest")).unwrap();
     // 1.959964 × 5.9 = 11.5638, shown to 3 significant digits.
-    assert_eq!(text_after(&html, latest), "latest (2026-03-04 00:00): 131.2 ± 11.6 (95%)");
-    let options: Vec<String> = inner.iter().filter(|t| t.name == "option").map(|t| text_after(&html, t)).collect();
-    assert_eq!(options, ["zone = harbour", "zone = uplands", "each window", "epoch to date"]);
+    assert_eq!(
+        text_after(&html, latest),
+        "latest (2026-03-04 00:00): 131.2 ± 11.6 (95%)"
+    );
+    let options: Vec<String> = inner
+        .iter()
+        .filter(|t| t.name == "option")
+        .map(|t| text_after(&html, t))
+        .collect();
+    assert_eq!(
+        options,
+        [
+            "zone = harbour",
+            "zone = uplands",
+            "each window",
+            "epoch to date"
+        ]
+    );
 
     // Mean: undefined windows 10–11 and 30 leave gaps: three runs in the line and the band.
     let inner = inside_section(&html, &all, p["trip_minutes_mean"]);
-    let line = inner.iter().find(|t| t.name == "path" && t.has_class("line")).unwrap();
+    let line = inner
+        .iter()
+        .find(|t| t.name == "path" && t.has_class("line"))
+        .unwrap();
     assert_eq!(line.attr("data-runs"), Some("3"));
     assert_eq!(subpaths(line.attr("d").unwrap()), 3);
-    let band = inner.iter().find(|t| t.name == "path" && t.has_class("band")).unwrap();
+    let band = inner
+        .iter()
+        .find(|t| t.name == "path" && t.has_class("band"))
+        .unwrap();
     assert_eq!(subpaths(band.attr("d").unwrap()), 3);
 
     // Linear: one chart per coefficient, intercept first (JSON objects arrive with sorted
     // keys, so "boardings" comes before it on the wire), each broken at the window without a fit.
     let inner = inside_section(&html, &all, p["trip_model"]);
-    let coefs: Vec<&str> = inner.iter().filter(|t| t.name == "figure").filter_map(|t| t.attr("data-coef")).collect();
+    let coefs: Vec<&str> = inner
+        .iter()
+        .filter(|t| t.name == "figure")
+        .filter_map(|t| t.attr("data-coef"))
+        .collect();
     assert_eq!(coefs, ["intercept", "boardings", "transfers", "trip_km"]);
-    let lines: Vec<&&Tag> = inner.iter().filter(|t| t.name == "path" && t.has_class("line")).collect();
+    let lines: Vec<&&Tag> = inner
+        .iter()
+        .filter(|t| t.name == "path" && t.has_class("line"))
+        .collect();
     assert_eq!(lines.len(), 4);
     assert!(lines.iter().all(|l| l.attr("data-runs") == Some("2")));
 }
 
 #[test]
 fn dashboard_shows_exhaustion_event_level_and_fresh_budgets() {
-    let Some(chromium) = tool("chromium") else { return };
+    let Some(chromium) = tool("chromium") else {
+        return;
+    };
     let (addr, _) = serve_fixtures(fixture_scenarios(), 500);
+    // Three page loads at once: Chromium's start-up, not the page, is the slow part.
+    let [exhausted, event, fresh] = std::thread::scope(|s| {
+        ["exhausted", "event", "fresh"]
+            .map(|name| {
+                let (chromium, addr) = (&chromium, &addr);
+                s.spawn(move || chromium_dom(chromium, &format!("http://{addr}/{name}/"), &[]))
+            })
+            .map(|h| h.join().unwrap())
+    });
 
-    let html = chromium_dom(&chromium, &format!("http://{addr}/exhausted/"), &[]);
+    let html = exhausted;
     let all = tags(&html);
     assert_healthy_page(&html, &all);
     let banner = by_id(&all, "banner-exhausted");
-    assert!(!banner.attrs.contains_key("hidden"), "exhausted budget must show the red banner");
+    assert!(
+        !banner.attrs.contains_key("hidden"),
+        "exhausted budget must show the red banner"
+    );
     let banner_text = &html[banner.end..banner.end + html[banner.end..].find("</div>").unwrap()];
-    assert!(banner_text.contains("epoch 8 needs rho 0.5"), "banner shows the reason: {banner_text}");
-    assert!(by_id(&all, "banner-seeded").attrs.contains_key("hidden"), "no seeded record here");
+    assert!(
+        banner_text.contains("epoch 8 needs rho 0.5"),
+        "banner shows the reason: {banner_text}"
+    );
+    assert!(
+        by_id(&all, "banner-seeded").attrs.contains_key("hidden"),
+        "no seeded record here"
+    );
     let gauge = by_id(&all, "budget-gauge");
-    assert_eq!((gauge.attr("data-state"), gauge.attr("data-fraction")), (Some("exhausted"), Some("1")));
+    assert_eq!(
+        (gauge.attr("data-state"), gauge.attr("data-fraction")),
+        (Some("exhausted"), Some("1"))
+    );
     let eta = by_id(&all, "exhaustion-eta");
     assert_eq!(text_after(&html, eta), "exhausted");
     // Epoch 8 has no window closed, so it is not charged: 8 of 8 charged leaves 0 windows
     // (counting its 720 windows as covered would be the off-by-one-epoch mistake).
     assert_eq!(eta.attr("data-remaining-windows"), Some("0"));
 
-    let html = chromium_dom(&chromium, &format!("http://{addr}/event/"), &[]);
+    let html = event;
     let all = tags(&html);
     assert_healthy_page(&html, &all);
     let body = all.iter().find(|t| t.name == "body").unwrap();
     assert_eq!(body.attr("data-records"), Some("0"));
     let gauge = by_id(&all, "budget-gauge");
-    assert_eq!((gauge.attr("data-level"), gauge.attr("data-state")), (Some("event"), Some("uncapped")));
-    let texts: Vec<String> = all.iter().filter(|t| t.name == "text").map(|t| text_after(&html, t)).collect();
-    assert!(texts.iter().any(|t| t == "event level: no lifetime cap"), "{texts:?}");
+    assert_eq!(
+        (gauge.attr("data-level"), gauge.attr("data-state")),
+        (Some("event"), Some("uncapped"))
+    );
+    let texts: Vec<String> = all
+        .iter()
+        .filter(|t| t.name == "text")
+        .map(|t| text_after(&html, t))
+        .collect();
+    assert!(
+        texts.iter().any(|t| t == "event level: no lifetime cap"),
+        "{texts:?}"
+    );
     let eta = by_id(&all, "exhaustion-eta");
     assert_eq!(text_after(&html, eta), "never (no lifetime cap)");
     assert_eq!(eta.attr("data-remaining-windows"), Some(""));
-    assert_eq!(text_after(&html, by_id(&all, "epochs")), "1 (no lifetime cap)");
+    assert_eq!(
+        text_after(&html, by_id(&all, "epochs")),
+        "1 (no lifetime cap)"
+    );
     for t in ["banner-seeded", "banner-exhausted"] {
         assert!(by_id(&all, t).attrs.contains_key("hidden"), "{t} shown");
     }
@@ -1079,14 +1479,20 @@ fn dashboard_shows_exhaustion_event_level_and_fresh_budgets() {
 
     // Before the first event no epoch is charged: all 8 allowed epochs of 720 windows are
     // ahead (8 × 720 = 5760), and no date can be given without a release's window length.
-    let html = chromium_dom(&chromium, &format!("http://{addr}/fresh/"), &[]);
+    let html = fresh;
     let all = tags(&html);
     assert_healthy_page(&html, &all);
     let eta = by_id(&all, "exhaustion-eta");
     assert_eq!(eta.attr("data-remaining-windows"), Some("5760"));
     assert_eq!(eta.attr("data-eta-ms"), Some(""));
-    assert_eq!(text_after(&html, eta), "5,760 windows (date after the first release)");
-    assert_eq!(text_after(&html, by_id(&all, "epoch-label")), "no epoch started yet (720 windows per epoch)");
+    assert_eq!(
+        text_after(&html, eta),
+        "5,760 windows (date after the first release)"
+    );
+    assert_eq!(
+        text_after(&html, by_id(&all, "epoch-label")),
+        "no epoch started yet (720 windows per epoch)"
+    );
     assert_eq!(by_id(&all, "budget-gauge").attr("data-fraction"), Some("0"));
 }
 
@@ -1115,18 +1521,31 @@ fn demo_stats_and_privacy() -> String {
 
 #[test]
 fn dashboard_renders_a_live_daemon_fed_the_demo_feed() {
-    let Some(chromium) = tool("chromium") else { return };
+    let Some(chromium) = tool("chromium") else {
+        return;
+    };
     let dir = tempfile::tempdir().unwrap();
     let demo_out = dir.path().join("demo");
     let mut cmd = command(env!("CARGO_BIN_EXE_scrim"));
-    cmd.args(["demo", "--seed", "1", "--days", "2", "--out"]).arg(&demo_out);
+    cmd.args(["demo", "--seed", "1", "--days", "2", "--out"])
+        .arg(&demo_out);
     let out = run_with_timeout(cmd, None, 300);
-    assert!(out.status.success(), "scrim demo: {}", String::from_utf8_lossy(&out.stderr));
+    assert!(
+        out.status.success(),
+        "scrim demo: {}",
+        String::from_utf8_lossy(&out.stderr)
+    );
     let feed = demo_out.join("feed.jsonl");
-    assert!(feed.metadata().is_ok_and(|m| m.len() > 0), "demo left no feed");
+    assert!(
+        feed.metadata().is_ok_and(|m| m.len() > 0),
+        "demo left no feed"
+    );
     std::fs::copy(&feed, dir.path().join("feed.jsonl")).unwrap();
 
-    let d = start_daemon(dir.path(), &feed_config(dir.path(), &demo_stats_and_privacy()));
+    let d = start_daemon(
+        dir.path(),
+        &feed_config(dir.path(), &demo_stats_and_privacy()),
+    );
     // Wait until the feed is consumed and the windows it closes are published: the record
     // count and the input counters stop moving.
     let mut last = (usize::MAX, String::new());
@@ -1136,7 +1555,11 @@ fn dashboard_renders_a_live_daemon_fed_the_demo_feed() {
             let n = all_releases(&d.http).len();
             let b = get_json(&d.http, "/v1/budget");
             let counts = format!("{} {} {}", b["accepted"], b["rejected"], b["late"]);
-            stable = if n > 0 && (n, counts.clone()) == last { stable + 1 } else { 0 };
+            stable = if n > 0 && (n, counts.clone()) == last {
+                stable + 1
+            } else {
+                0
+            };
             last = (n, counts);
             stable >= 5
         },
@@ -1146,12 +1569,18 @@ fn dashboard_renders_a_live_daemon_fed_the_demo_feed() {
     let releases = all_releases(&d.http);
     let budget = get_json(&d.http, "/v1/budget");
 
-    let shot = Path::new(env!("CARGO_TARGET_TMPDIR")).parent().unwrap().join("dashboard.png");
+    let shot = Path::new(env!("CARGO_TARGET_TMPDIR"))
+        .parent()
+        .unwrap()
+        .join("dashboard.png");
     let _ = std::fs::remove_file(&shot);
     let html = chromium_dom(
         &chromium,
         &format!("http://{}/", d.http),
-        &[format!("--screenshot={}", shot.display()), "--window-size=1400,1000".to_string()],
+        &[
+            format!("--screenshot={}", shot.display()),
+            "--window-size=1400,1000".to_string(),
+        ],
     );
     // The page saw the daemon at some moment between the snapshots taken before and after.
     let releases_after = all_releases(&d.http).len();
@@ -1160,30 +1589,58 @@ fn dashboard_renders_a_live_daemon_fed_the_demo_feed() {
     assert_healthy_page(&html, &all);
     let body = all.iter().find(|t| t.name == "body").unwrap();
     let n_shown: usize = body.attr("data-records").unwrap().parse().unwrap();
-    assert!((releases.len()..=releases_after).contains(&n_shown), "{n_shown} records shown, {} .. {releases_after} published", releases.len());
+    assert!(
+        (releases.len()..=releases_after).contains(&n_shown),
+        "{n_shown} records shown, {} .. {releases_after} published",
+        releases.len()
+    );
     let gauge = by_id(&all, "budget-gauge");
     assert_eq!(gauge.attr("data-level"), budget["level"].as_str());
     for name in ["accepted", "rejected", "late", "bounded"] {
-        let tile = all.iter().find(|t| t.attr("data-count") == Some(name)).unwrap();
+        let tile = all
+            .iter()
+            .find(|t| t.attr("data-count") == Some(name))
+            .unwrap();
         let shown: u64 = tile.attr("data-value").unwrap().parse().unwrap();
-        let (lo, hi) = (budget[name].as_u64().unwrap(), budget_after[name].as_u64().unwrap());
-        assert!((lo..=hi).contains(&shown), "{name}: {shown} not in {lo}..={hi}");
+        let (lo, hi) = (
+            budget[name].as_u64().unwrap(),
+            budget_after[name].as_u64().unwrap(),
+        );
+        assert!(
+            (lo..=hi).contains(&shown),
+            "{name}: {shown} not in {lo}..={hi}"
+        );
     }
     let seeded = releases.iter().any(|r| r["seeded"] == true);
-    assert_eq!(!by_id(&all, "banner-seeded").attrs.contains_key("hidden"), seeded);
+    assert_eq!(
+        !by_id(&all, "banner-seeded").attrs.contains_key("hidden"),
+        seeded
+    );
 
     let p = panels(&all);
-    let stats: Vec<&str> = budget["stats"].as_array().unwrap().iter().map(|s| s["name"].as_str().unwrap()).collect();
+    let stats: Vec<&str> = budget["stats"]
+        .as_array()
+        .unwrap()
+        .iter()
+        .map(|s| s["name"].as_str().unwrap())
+        .collect();
     assert!(!stats.is_empty());
     assert_eq!(p.len(), stats.len(), "one panel per statistic");
     for stat in stats {
         let panel = p.get(stat).unwrap_or_else(|| panic!("no panel for {stat}"));
         let inner = inside_section(&html, &all, panel);
-        let drawn = inner.iter().filter(|t| t.name == "path" && t.has_class("line")).any(|t| t.attr("d").is_some_and(|d| d.starts_with('M')));
+        let drawn = inner
+            .iter()
+            .filter(|t| t.name == "path" && t.has_class("line"))
+            .any(|t| t.attr("d").is_some_and(|d| d.starts_with('M')));
         assert!(drawn, "{stat}: no series line drawn");
     }
 
-    let png = std::fs::read(&shot).unwrap_or_else(|e| panic!("no screenshot at {}: {e}", shot.display()));
-    assert!(png.starts_with(b"\x89PNG\r\n\x1a\n") && png.len() > 10_000, "screenshot is not a rendered PNG");
+    let png =
+        std::fs::read(&shot).unwrap_or_else(|e| panic!("no screenshot at {}: {e}", shot.display()));
+    assert!(
+        png.starts_with(b"\x89PNG\r\n\x1a\n") && png.len() > 10_000,
+        "screenshot is not a rendered PNG"
+    );
     println!("dashboard screenshot: {}", shot.display());
 }
