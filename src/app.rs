@@ -481,6 +481,8 @@ pub struct DemoArgs {
     pub out: PathBuf,
     /// Days of feed.
     pub days: u32,
+    /// After the run, serve the releases and dashboard on this address.
+    pub serve: Option<std::net::SocketAddr>,
 }
 
 /// `scrim demo`: generate the Quillhaven feed, run the real pipeline, print a summary.
@@ -521,6 +523,14 @@ pub fn demo(args: &DemoArgs, w: &mut dyn Write) -> Result<Vec<Release>, AppError
     feed_file.flush().map_err(io("writing the demo feed"))?;
     let elapsed = started.elapsed();
     print_demo_summary(w, &engine, &all, n_lines, elapsed, &args.out, seeded).map_err(io("printing"))?;
+    if let Some(addr) = args.serve {
+        w.flush().map_err(io("printing"))?;
+        let rt = tokio::runtime::Builder::new_multi_thread()
+            .enable_all()
+            .build()
+            .map_err(io("starting the tokio runtime"))?;
+        rt.block_on(crate::runtime::daemon::serve_snapshot(&engine, all.clone(), addr))?;
+    }
     Ok(all)
 }
 
@@ -582,9 +592,9 @@ fn print_demo_summary(
     if let Some(r) = last_leaf_records("trip_model", "epoch_to_date").first() {
         writeln!(w)?;
         writeln!(w, "Linear model trip_minutes ~ 1 + trip_km + transfers (epoch_to_date, last window)")?;
-        let gen = [("intercept", crate::demo::TRUE_INTERCEPT), ("trip_km", crate::demo::TRUE_KM), ("transfers", crate::demo::TRUE_TRANSFERS)];
+        let generator = [("intercept", crate::demo::TRUE_INTERCEPT), ("trip_km", crate::demo::TRUE_KM), ("transfers", crate::demo::TRUE_TRANSFERS)];
         writeln!(w, "  {:<12} {:>24} {:>14} {:>12}", "coefficient", "released ± 2·std_error", "exact fit", "generator")?;
-        for (name, truth_gen) in gen {
+        for (name, truth_gen) in generator {
             let v = r.value.get(name).and_then(|v| v.as_f64());
             let s = r.std_error.get(name).and_then(|v| v.as_f64());
             let exact = r.truth.as_ref().and_then(|t| t.get(name)).and_then(|v| v.as_f64());

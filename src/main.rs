@@ -28,6 +28,12 @@ enum Command {
         /// Days of feed to generate.
         #[arg(long, default_value_t = 7)]
         days: u32,
+        /// After the run, serve the dashboard and HTTP API until Ctrl-C.
+        #[arg(long)]
+        serve: bool,
+        /// Address for --serve.
+        #[arg(long, default_value = "127.0.0.1:9650")]
+        listen: std::net::SocketAddr,
     },
     /// Process a JSON-lines file (or `-` for stdin) by event time and write releases.
     Replay {
@@ -76,8 +82,8 @@ fn key_source(seed: Option<u64>) -> KeySource {
 
 fn run(cli: Cli) -> Result<(), AppError> {
     match cli.command {
-        Command::Demo { seed, out, days } => {
-            let args = app::DemoArgs { key: key_source(seed), out, days };
+        Command::Demo { seed, out, days, serve, listen } => {
+            let args = app::DemoArgs { key: key_source(seed), out, days, serve: serve.then_some(listen) };
             app::demo(&args, &mut std::io::stdout().lock())?;
             Ok(())
         }

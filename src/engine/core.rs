@@ -767,3 +767,179 @@ fn render_linear(
         rec.truth = linear::fit(layout, &t[0], 0.0, c.grid_exp, &method, &mut trng).ok().map(|f| obj(&f.coefficients));
     }
 }
+
+#[cfg(test)]
+mod tests {
+    //! Neighbouring datasets: removing one unit (including one far over its bounds) changes
+    //! every mechanism's node vector by at most the sensitivity the plan used to scale the
+    //! noise (privacy-math §8). Node vectors are rebuilt from the exact leaves by brute force.
+    use super::*;
+    use crate::config::Config;
+    use crate::engine::mechanism::MechanismKind;
+
+    fn config(mechanism: &str) -> Config {
+        Config::from_toml_str(&format!(
+            r#"
+[input]
+time_field = "ts"
+unit_field = "card"
+[window]
+length = "1h"
+allowed_lateness = "0s"
+[privacy]
+rho_per_epoch = 1.0
+lifetime_rho = 4.0
+delta = 1e-9
+epoch_windows = 16
+max_events_per_window = 2
+max_windows_per_epoch = 3
+mechanism = "{mechanism}"
+[[stats]]
+name = "c"
+kind = "count"
+group_by = ["zone"]
+[stats.keys]
+zone = ["a", "b", "c"]
+[[stats]]
+name = "s"
+kind = "sum"
+field = "v"
+range = [-5, 20]
+[[stats]]
+name = "m"
+kind = "mean"
+field = "v"
+range = [0, 10]
+[[stats]]
+name = "l"
+kind = "linear"
+target = "y"
+features = ["v", "w"]
+feature_norm_bound = 10.0
+target_bound = 30.0
+"#
+        ))
+        .expect("valid test config")
+    }
+
+    /// A random feed: `units` units, a heavy unit 0 far over both bounds.
+    fn feed(units: u32, seed: u64) -> Vec<(i64, u32, String)> {
+        let mut x = seed | 1;
+        let mut rnd = move |n: u64| {
+            x ^= x << 13;
+            x ^= x >> 7;
+            x ^= x << 17;
+            x % n
+        };
+        let zones = ["a", "b", "c"];
+        let mut out = Vec::new();
+        for u in 0..units {
+            let n = if u == 0 { 60 } else { 1 + rnd(6) };
+            for _ in 0..n {
+                let ts = 1_772_409_600_000 + rnd(10 * 3_600_000) as i64;
+                let v = rnd(400) as f64 / 10.0 - 8.0;
+                let w = rnd(100) as f64 / 10.0;
+                let y = 2.0 * v + w + rnd(50) as f64 / 10.0;
+                let line = format!(
+                    r#"{{"ts":{ts},"card":"u{u}","zone":"{}","v":{v},"w":{w},"y":{y}}}"#,
+                    zones[rnd(3) as usize]
+                );
+                out.push((ts, u, line));
+            }
+        }
+        out.sort_by_key(|e| e.0);
+        out
+    }
+
+    /// Exact leaves `[stat][component][group][leaf]` after processing `lines`.
+    fn leaves(cfg: &Config, lines: &[&str]) -> Vec<Vec<Vec<Vec<Vec<i128>>>>> {
+        let mut e = Engine::new(cfg, NoiseKey::from_seed(1), EngineOptions { seeded: true, danger_keep_truth: true })
+            .expect("engine");
+        for l in lines {
+            e.handle_line(l.as_bytes());
+        }
+        e.finish();
+        let state = e.epoch.as_ref().expect("one epoch");
+        state.series.iter().map(|s| s.truth.clone().expect("truth kept")).collect()
+    }
+
+    fn sq(v: &[i128]) -> f64 {
+        v.iter().map(|x| (*x as f64).powi(2)).sum()
+    }
+
+    /// ‖Δ(node vector)‖² for one component over all groups, by brute force.
+    fn node_delta_sq(kind: MechanismKind, a: &[Vec<Vec<i128>>], b: &[Vec<Vec<i128>>], horizon: u32) -> f64 {
+        let mut total = 0.0;
+        for (ga, gb) in a.iter().zip(b) {
+            let n = ga.len().max(gb.len());
+            let dim = ga.first().or(gb.first()).map_or(0, Vec::len);
+            let diff: Vec<Vec<i128>> = (0..n)
+                .map(|t| {
+                    (0..dim)
+                        .map(|j| ga.get(t).map_or(0, |v| v[j]) - gb.get(t).map_or(0, |v| v[j]))
+                        .collect()
+                })
+                .collect();
+            match kind {
+                MechanismKind::Independent => total += diff.iter().map(|d| sq(d)).sum::<f64>(),
+                MechanismKind::Tree => {
+                    let mut level = 0;
+                    while (1usize << level) <= horizon as usize {
+                        let size = 1usize << level;
+                        let mut start = 0;
+                        while start + size <= n {
+                            let mut node = vec![0i128; dim];
+                            for d in &diff[start..start + size] {
+                                for (acc, x) in node.iter_mut().zip(d) {
+                                    *acc += x;
+                                }
+                            }
+                            total += sq(&node);
+                            start += size;
+                        }
+                        level += 1;
+                    }
+                }
+                MechanismKind::SqrtFactorization => {
+                    let mut c = vec![1.0f64; n];
+                    for k in 1..n {
+                        c[k] = c[k - 1] * (1.0 - 1.0 / (2.0 * k as f64));
+                    }
+                    for t in 0..n {
+                        for j in 0..dim {
+                            let r: f64 = (0..=t).map(|s| c[t - s] * diff[s][j] as f64).sum();
+                            total += r * r;
+                        }
+                    }
+                }
+            }
+        }
+        total
+    }
+
+    #[test]
+    fn removing_any_unit_moves_every_node_vector_by_at_most_the_sensitivity() {
+        for mech in ["tree", "sqrt-factorization", "independent"] {
+            let cfg = config(mech);
+            let plan = Plan::new(&cfg).expect("plan");
+            let events = feed(12, 0x9e37_79b9);
+            let all: Vec<&str> = events.iter().map(|e| e.2.as_str()).collect();
+            let full = leaves(&cfg, &all);
+            for removed in 0..12u32 {
+                let rest: Vec<&str> = events.iter().filter(|e| e.1 != removed).map(|e| e.2.as_str()).collect();
+                let nb = leaves(&cfg, &rest);
+                for (si, s) in plan.stats.iter().enumerate() {
+                    for (ci, c) in s.components.iter().enumerate() {
+                        let d = node_delta_sq(plan.mechanism, &full[si][ci], &nb[si][ci], plan.epoch_windows);
+                        assert!(
+                            d <= c.sensitivity_sq * (1.0 + 1e-9),
+                            "{mech}: removing unit {removed} moved stat {} component {ci} by Δ² = {d:e} > {:e}",
+                            s.name,
+                            c.sensitivity_sq
+                        );
+                    }
+                }
+            }
+        }
+    }
+}

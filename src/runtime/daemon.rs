@@ -255,7 +255,7 @@ pub async fn run(config: Config, seed: Option<u64>) -> Result<(), AppError> {
     if !records.is_empty() {
         tracing::info!(records = records.len(), releases = restored.len(), "state restored from the log");
     }
-    let mut metrics = Metrics::new();
+    let metrics = Metrics::new();
     metrics.declare_stats(engine.plan().stats.iter().map(|s| s.name.as_str()));
     let metrics = Arc::new(Mutex::new(metrics));
     let (budget_tx, budget_rx) = watch::channel(Arc::new(budget_view(&engine)));
@@ -470,4 +470,33 @@ fn publish(
         }
     }
     Ok(())
+}
+
+/// `scrim demo --serve`: serves a finished run's releases, budget and metrics over the same
+/// HTTP API (and dashboard) as the daemon, until SIGINT/SIGTERM.
+pub async fn serve_snapshot(engine: &Engine, releases: Vec<Release>, listen: std::net::SocketAddr) -> Result<(), AppError> {
+    let io = |what: String| move |source: std::io::Error| AppError::Io { context: what, source };
+    let mut metrics = Metrics::new();
+    metrics.declare_stats(engine.plan().stats.iter().map(|s| s.name.as_str()));
+    update_gauges(&mut metrics, engine, 0);
+    let mut store = ReleaseStore::default();
+    for r in releases {
+        store.push(r);
+    }
+    let (_budget_tx, budget_rx) = watch::channel(Arc::new(budget_view(engine)));
+    let shared = Arc::new(Shared {
+        releases: RwLock::new(store),
+        budget: budget_rx,
+        metrics: Arc::new(Mutex::new(metrics)),
+        ready: AtomicBool::new(true),
+    });
+    let listener = tokio::net::TcpListener::bind(listen).await.map_err(io(format!("binding {listen}")))?;
+    let addr = listener.local_addr().map_err(io("reading the HTTP address".to_string()))?;
+    eprintln!("scrim: http listening on {addr} (dashboard at http://{addr}/); Ctrl-C to stop");
+    axum::serve(listener, crate::runtime::http::router(shared))
+        .with_graceful_shutdown(async {
+            let _ = tokio::signal::ctrl_c().await;
+        })
+        .await
+        .map_err(io("serving HTTP".to_string()))
 }

@@ -169,7 +169,7 @@ pub fn new_mechanism(
     }
 }
 
-/// Number of tree levels h = ⌊log₂ T⌋ + 1 (privacy-math.md §4, [D]): level l has a node
+/// Number of tree levels h = ⌊log₂ T⌋ + 1 (privacy-math.md §4, \[D\]): level l has a node
 /// only if some aligned block of 2^l leaves fits inside [0, T), i.e. 2^l ≤ T.
 /// `levels(0) = 0` (no leaves, no nodes).
 pub fn levels(horizon: u32) -> u32 {
@@ -188,10 +188,10 @@ fn round_up(x: f64, n_ops: f64) -> f64 {
 /// Squared L2 sensitivity of everything the mechanism releases over one epoch, in grid
 /// units², when one privacy unit changes at most `max_leaves` leaves, each by a vector of L2
 /// norm at most `leaf_bound` (grid units). At most `horizon` leaves exist, so `max_leaves` is
-/// capped at `horizon`. The result is rounded up (see [`round_up`]) so that floating-point
+/// capped at `horizon`. The result is rounded up (see `round_up`) so that floating-point
 /// error never makes it smaller than the true bound.
 ///
-/// * Tree (privacy-math.md §8, [D]): Δ₂² ≤ B²·m·Σ_{l<h} min(2^l, m). At level l the m changed
+/// * Tree (privacy-math.md §8, \[D\]): Δ₂² ≤ B²·m·Σ_{l<h} min(2^l, m). At level l the m changed
 ///   leaves fall into nodes holding n_v ≤ min(2^l, m) of them with Σ_v n_v ≤ m, so
 ///   Σ_v n_v² ≤ min(2^l, m)·m. For D > 1 a node's change is a sum of ≤ n_v leaf changes of
 ///   norm ≤ B each, so by the triangle inequality its squared norm is ≤ (n_v·B)²: the same
@@ -757,11 +757,12 @@ mod tests {
     fn calibrate(
         kind: MechanismKind,
         horizon: u32,
+        dim: usize,
         max_trailing: u32,
         n_runs: usize,
         checkpoint: impl Fn(u32) -> bool,
     ) {
-        let dim = 2;
+        assert!((1..=2).contains(&dim));
         let leaves: Vec<[i128; 2]> = (0..horizon)
             .map(|i| {
                 [
@@ -782,7 +783,7 @@ mod tests {
             let mut mech = new_mechanism(kind, horizon, dim, max_trailing, calibration_node_var());
             let mut slot = 0;
             for t in 1..=horizon {
-                mech.push_leaf(&leaves[t as usize - 1], &mut noise);
+                mech.push_leaf(&leaves[t as usize - 1][..dim], &mut noise);
                 if !checkpoint(t) {
                     continue;
                 }
@@ -848,17 +849,17 @@ mod tests {
 
     #[test]
     fn monte_carlo_tree_variance_matches_prediction_at_t64() {
-        calibrate(MechanismKind::Tree, 64, 24, 2000, |_| true);
+        calibrate(MechanismKind::Tree, 64, 2, 24, 2000, |_| true);
     }
 
     #[test]
     fn monte_carlo_sqrt_variance_matches_prediction_at_t64() {
-        calibrate(MechanismKind::SqrtFactorization, 64, 24, 2000, |_| true);
+        calibrate(MechanismKind::SqrtFactorization, 64, 2, 24, 2000, |_| true);
     }
 
     #[test]
     fn monte_carlo_independent_variance_matches_prediction_at_t64() {
-        calibrate(MechanismKind::Independent, 64, 24, 2000, |_| true);
+        calibrate(MechanismKind::Independent, 64, 2, 24, 2000, |_| true);
     }
 
     /// Heavier calibration at T = 720 (the contract's example epoch) with a 168-leaf trailing
@@ -867,21 +868,29 @@ mod tests {
     #[ignore]
     fn monte_carlo_variance_matches_prediction_at_t720() {
         for kind in MechanismKind::ALL {
-            calibrate(kind, 720, 168, 2000, |t| {
+            calibrate(kind, 720, 2, 168, 2000, |t| {
                 t.is_multiple_of(7) || t == 720 || t < 4
             });
         }
     }
 
     /// Heaviest calibration at T = 8760 (a year of hours). The square-root factorization
-    /// costs O(T²) per run, so it gets 300 runs. Run with
+    /// costs O(T²·D) per run, so it gets one coordinate and 300 runs (the χ² bounds account
+    /// for the smaller sample). Run with
     /// `cargo test --release -- --ignored monte_carlo_variance_matches_prediction_at_t8760`.
     #[test]
     #[ignore]
     fn monte_carlo_variance_matches_prediction_at_t8760() {
         let checkpoint = |t: u32| t.is_multiple_of(511) || t == 8760 || t == 8191 || t == 1;
-        calibrate(MechanismKind::Tree, 8760, 168, 2000, checkpoint);
-        calibrate(MechanismKind::Independent, 8760, 168, 2000, checkpoint);
-        calibrate(MechanismKind::SqrtFactorization, 8760, 168, 300, checkpoint);
+        calibrate(MechanismKind::Tree, 8760, 2, 168, 2000, checkpoint);
+        calibrate(MechanismKind::Independent, 8760, 2, 168, 2000, checkpoint);
+        calibrate(
+            MechanismKind::SqrtFactorization,
+            8760,
+            1,
+            168,
+            300,
+            checkpoint,
+        );
     }
 }

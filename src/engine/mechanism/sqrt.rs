@@ -86,7 +86,7 @@ pub(super) fn float_coefficients(n: u32) -> Vec<f64> {
 }
 
 /// Upper bound on the squared norm of every column of R̂ over a horizon of T leaves:
-/// Σ_{k<T} ĉ_k² ≤ G_{T−1} = Σ_{k<T} c_k² (Landau's constants; privacy-math.md §5, [C]:
+/// Σ_{k<T} ĉ_k² ≤ G_{T−1} = Σ_{k<T} c_k² (Landau's constants; privacy-math.md §5, \[C\]:
 /// 64 → 2.388848, 1024 → 3.272554, 8760 → 3.955868). Column 0 is the longest because every
 /// other column is a truncation of it. Computed from [`float_coefficients`] (relative error
 /// ≤ 2k·u each, so ≤ (4k + 1)·u for c_k²) plus ≤ T roundings of the sum: at most (5T + 1)·u

@@ -28,12 +28,12 @@
 //! u_v is built bottom-up when v completes: u_v = 2^{level v}·y_v + u_left + u_right. Only the
 //! nodes b on the two boundary paths of the range have c·ψ_b ≠ 0 (any other node is inside
 //! the range or disjoint from it), so an estimate costs O(log T). Checks: a whole subtree
-//! gives 2^H/(2^{H+1} − 1) (privacy-math.md §4, [D]); a single leaf with H = 1 gives 2/3.
+//! gives 2^H/(2^{H+1} − 1) (privacy-math.md §4, \[D\]); a single leaf with H = 1 gives 2/3.
 //! Both are unit tests, as is the agreement with dense GLS for all ranges at small T.
 //!
 //! Memory: the mechanism keeps the current forest roots plus every node that ends after
 //! leaf t − M (M = `max_trailing`): at most 2M + 2h nodes. That is enough for every
-//! answerable range (proof at [`TreeMechanism::wavelet_difference`]).
+//! answerable range (proof at `TreeMechanism::wavelet_difference`).
 
 use std::collections::VecDeque;
 
@@ -211,7 +211,10 @@ fn for_each_term(n_leaves: u32, range: LeafRange, mut visit: impl FnMut(Term)) {
                 index: subtree_start >> height,
                 count: q - p + 1,
             });
-            for level in 1..=height {
+            // A fully covered subtree has c·ψ_b = 0 for all its wavelets, so only the (at
+            // most two) partially covered subtrees walk their paths: O(log T) overall.
+            let partial = p > subtree_start || q < subtree_end - 1;
+            for level in (1..=height).filter(|_| partial) {
                 let (index_p, index_q) = (p >> level, q >> level);
                 let path_nodes = if index_p == index_q { 1 } else { 2 };
                 for index in [index_p, index_q].into_iter().take(path_nodes) {
@@ -453,7 +456,7 @@ mod tests {
         }
     }
 
-    /// Dense GLS after `t` leaves (privacy-math.md §4, [D]; Honaker 2015): builds the 0/1
+    /// Dense GLS after `t` leaves (privacy-math.md §4, \[D\]; Honaker 2015): builds the 0/1
     /// node-by-leaf matrix A of every node ending at or before t, solves (AᵀA) x̂ = Aᵀy with
     /// a Cholesky factorisation, and returns x̂ and (AᵀA)⁻¹.
     fn dense_gls(
