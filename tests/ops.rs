@@ -1212,7 +1212,12 @@ fn dashboard_renders_the_unit_level_fixture_with_paging_bands_gaps_and_budget() 
     let page_cap = 37;
     let (addr, log) = serve_fixtures(scenarios, page_cap);
     let t_before = now_ms();
-    let html = chromium_dom(&chromium, &format!("http://{addr}/unit/"), &[]);
+    // 1400 px wide: the series grid has two columns (cards at least 560 px wide).
+    let html = chromium_dom(
+        &chromium,
+        &format!("http://{addr}/unit/"),
+        &["--window-size=1400,1000".to_string()],
+    );
     let t_after = now_ms();
     let all = tags(&html);
     assert_healthy_page(&html, &all);
@@ -1382,6 +1387,26 @@ fn dashboard_renders_the_unit_level_fixture_with_paging_bands_gaps_and_budget() 
         .unwrap();
     assert_eq!(subpaths(band.attr("d").unwrap()), 3);
 
+    // Every chart is drawn for the laid-out grid: the count chart (first panel drawn) is as
+    // wide as the mean chart in the other column, and both fit in half the window.
+    let chart_width = |stat: &str| -> f64 {
+        let inner = inside_section(&html, &all, p[stat]);
+        let svg = inner
+            .iter()
+            .find(|t| t.name == "svg" && t.has_class("chart-svg"))
+            .unwrap();
+        svg.attr("width").unwrap().parse().unwrap()
+    };
+    assert_eq!(
+        chart_width("taps_by_zone"),
+        chart_width("trip_minutes_mean")
+    );
+    assert!(
+        chart_width("taps_by_zone") < 700.0,
+        "{}",
+        chart_width("taps_by_zone")
+    );
+
     // Linear: one chart per coefficient, intercept first (JSON objects arrive with sorted
     // keys, so "boardings" comes before it on the wire), each broken at the window without a fit.
     let inner = inside_section(&html, &all, p["trip_model"]);
@@ -1497,6 +1522,40 @@ fn dashboard_shows_exhaustion_event_level_and_fresh_budgets() {
 }
 
 // ---- dashboard: the live daemon on the demo feed -------------------------------------------
+
+/// A released value that can be plotted: a finite number, or an object (linear) with one.
+fn defined(v: &Value) -> bool {
+    match v {
+        Value::Number(n) => n.as_f64().is_some_and(f64::is_finite),
+        Value::Object(m) => m.values().any(defined),
+        _ => false,
+    }
+}
+
+/// The records of the series the dashboard shows first for `stat`: the group whose label
+/// ("k = v" pairs by key, or "all (ungrouped)") is first in code-point order, scope
+/// "window" (every statistic releases it).
+fn default_series<'a>(releases: &'a [Value], stat: &str) -> Vec<&'a Value> {
+    let label = |g: &Value| -> String {
+        let m = g.as_object().cloned().unwrap_or_default();
+        if m.is_empty() {
+            return "all (ungrouped)".to_string();
+        }
+        let mut keys: Vec<&String> = m.keys().collect();
+        keys.sort();
+        keys.iter()
+            .map(|k| format!("{k} = {}", m[*k].as_str().unwrap_or_default()))
+            .collect::<Vec<_>>()
+            .join(", ")
+    };
+    let recs: Vec<&Value> = releases.iter().filter(|r| r["stat"] == stat).collect();
+    let Some(first) = recs.iter().map(|r| label(&r["group"])).min() else {
+        return Vec::new();
+    };
+    recs.into_iter()
+        .filter(|r| label(&r["group"]) == first && r["scope"] == "window")
+        .collect()
+}
 
 /// config/demo.toml without the sections `run` takes from the deployment (sources, http,
 /// output, state), which the caller supplies.
@@ -1626,14 +1685,39 @@ fn dashboard_renders_a_live_daemon_fed_the_demo_feed() {
         .collect();
     assert!(!stats.is_empty());
     assert_eq!(p.len(), stats.len(), "one panel per statistic");
-    for stat in stats {
-        let panel = p.get(stat).unwrap_or_else(|| panic!("no panel for {stat}"));
+    // The page draws a line exactly when its default selection (first group in code-point
+    // order, scope "window") holds a defined value.
+    for stat in &stats {
+        let panel = p
+            .get(*stat)
+            .unwrap_or_else(|| panic!("no panel for {stat}"));
         let inner = inside_section(&html, &all, panel);
         let drawn = inner
             .iter()
             .filter(|t| t.name == "path" && t.has_class("line"))
             .any(|t| t.attr("d").is_some_and(|d| d.starts_with('M')));
-        assert!(drawn, "{stat}: no series line drawn");
+        let expected = default_series(&releases, stat)
+            .iter()
+            .any(|r| defined(&r["value"]));
+        assert_eq!(
+            drawn, expected,
+            "{stat}: line drawn = {drawn}, default series has values = {expected}"
+        );
+    }
+    // Two days of the demo feed give every statistic plottable values in its default series;
+    // when one has none the pipeline, not the page, is at fault: say so with the records' notes.
+    for stat in &stats {
+        let recs = default_series(&releases, stat);
+        let notes: BTreeSet<&str> = recs
+            .iter()
+            .filter_map(|r| r["note"].as_str())
+            .take(3)
+            .collect();
+        assert!(
+            recs.iter().any(|r| defined(&r["value"])),
+            "{stat}: none of the {} records of its default series has a value (a pipeline problem); notes: {notes:?}",
+            recs.len()
+        );
     }
 
     let png =
