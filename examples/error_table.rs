@@ -28,7 +28,8 @@ fn plain_nodes(a: u32, b: u32) -> u32 {
     };
     let pb = prefix(b + 1);
     let pa = prefix(a);
-    let sym = pb.iter().filter(|n| !pa.contains(n)).count() + pa.iter().filter(|n| !pb.contains(n)).count();
+    let sym = pb.iter().filter(|n| !pa.contains(n)).count()
+        + pa.iter().filter(|n| !pb.contains(n)).count();
     sym as u32
 }
 
@@ -41,15 +42,33 @@ fn unit_node_var(k: MechanismKind, horizon: u32) -> f64 {
 }
 
 fn main() {
-    println!("std_error at the end of an epoch, in units of Δ/√(2ρ) (event level, one unit per window)");
+    println!(
+        "std_error at the end of an epoch, in units of Δ/√(2ρ) (event level, one unit per window)"
+    );
     println!("ratio = std_error / plain binary mechanism (no optimal estimator)\n");
-    let kinds = [MechanismKind::Tree, MechanismKind::SqrtFactorization, MechanismKind::Independent];
+    let kinds = [
+        MechanismKind::Tree,
+        MechanismKind::SqrtFactorization,
+        MechanismKind::Independent,
+    ];
     for horizon in [720u32, 8760] {
         let t = horizon - 1;
         let scopes: [(&str, LeafRange); 4] = [
             ("window", LeafRange { first: t, last: t }),
-            ("trailing:24", LeafRange { first: t - 23, last: t }),
-            ("trailing:168", LeafRange { first: t - 167, last: t }),
+            (
+                "trailing:24",
+                LeafRange {
+                    first: t - 23,
+                    last: t,
+                },
+            ),
+            (
+                "trailing:168",
+                LeafRange {
+                    first: t - 167,
+                    last: t,
+                },
+            ),
             ("epoch_to_date", LeafRange { first: 0, last: t }),
         ];
         println!("T = {horizon} (h = {} levels)", mechanism::levels(horizon));
@@ -78,7 +97,15 @@ fn main() {
         for k in kinds {
             let node_var = unit_node_var(k, horizon);
             let worst = (0..horizon)
-                .map(|t| mechanism::estimate_variance(k, horizon, node_var, t + 1, LeafRange { first: 0, last: t }))
+                .map(|t| {
+                    mechanism::estimate_variance(
+                        k,
+                        horizon,
+                        node_var,
+                        t + 1,
+                        LeafRange { first: 0, last: t },
+                    )
+                })
                 .fold(0.0f64, f64::max)
                 .sqrt();
             print!(" {} {worst:.4};", k.as_str());

@@ -32,7 +32,13 @@ pub const TRUE_NOISE_SD: f64 = 3.0;
 /// The public mode categories, in the order the demo configuration declares them.
 pub const MODES: [&str; 3] = ["tram", "ferry", "bus"];
 /// The public zone categories, in the order the demo configuration declares them.
-pub const ZONES: [&str; 5] = ["harbour", "old-town", "uplands", "riverside", "airport-link"];
+pub const ZONES: [&str; 5] = [
+    "harbour",
+    "old-town",
+    "uplands",
+    "riverside",
+    "airport-link",
+];
 
 /// Lateness the feed is designed around: late lines lag the feed time by more than this.
 pub const DESIGN_LATENESS_MS: i64 = 5 * 60_000;
@@ -115,6 +121,9 @@ pub struct DemoFeed {
     day_ms: i64,
     /// The current day's taps, sorted by time; `plan_pos` is the next one to emit.
     plan: Vec<PlannedTap>,
+    /// Scratch space of the day's counting sort, kept to avoid reallocating every day.
+    unsorted: Vec<PlannedTap>,
+    taps_per_sec: Vec<u32>,
     plan_pos: usize,
     /// Validator (mode, zone) of each stuck-validator episode of the current day.
     episodes: Vec<(u8, u8)>,
@@ -127,17 +136,26 @@ pub struct DemoFeed {
 #[derive(Clone, Copy, Debug)]
 struct CardProfile {
     commuter: bool,
+    /// Habitual departure times of a commuter, seconds after midnight.
+    morning_sec: u32,
+    evening_sec: u32,
+    /// What emitting a tap needs to know about the rider.
+    rider: Rider,
+}
+
+/// The traits a tap's fields depend on. Copied into every planned tap, so emitting a line
+/// reads the day plan sequentially instead of the card table at random (that cache miss
+/// was the largest single cost in profiles).
+#[derive(Clone, Copy, Debug, PartialEq)]
+struct Rider {
     /// Children ride free: every fare is 0.
     child: bool,
     /// Reduced fare (half price).
     concession: bool,
     home_zone: u8,
     work_zone: u8,
-    /// Habitual departure times of a commuter, seconds after midnight.
-    morning_sec: u32,
-    evening_sec: u32,
     /// Personal multiplier on trip length (some people live further out).
-    km_scale: f64,
+    km_scale: f32,
 }
 
 /// Which kind of trip a planned tap belongs to; it decides how the zone is drawn.
@@ -153,13 +171,29 @@ enum Leg {
     Stuck(u32),
 }
 
-/// One tap of the day plan. The derived order (time first) is what the feed emits; the
-/// remaining fields only break ties, so every correct sort gives the same sequence.
-#[derive(Clone, Copy, Debug, PartialEq, Eq, PartialOrd, Ord)]
+/// One tap of the day plan.
+#[derive(Clone, Copy, Debug, PartialEq)]
 struct PlannedTap {
     sec_of_day: u32,
     card_idx: u32,
     leg: Leg,
+    rider: Rider,
+}
+
+impl PlannedTap {
+    /// Placeholder for slots the sort overwrites at once.
+    const FILLER: PlannedTap = PlannedTap {
+        sec_of_day: 0,
+        card_idx: 0,
+        leg: Leg::Any,
+        rider: Rider {
+            child: false,
+            concession: false,
+            home_zone: 0,
+            work_zone: 0,
+            km_scale: 1.0,
+        },
+    };
 }
 
 /// A keyed bijection from card index to a short hex id, so ids look random, never
@@ -269,8 +303,34 @@ fn weighted_index(rng: &mut ChaCha20Rng, weights: &[u32]) -> usize {
     weights.len() - 1
 }
 
+/// `x.round()` (half away from zero, same bits) without the libm call that `f64::round`
+/// compiles to on baseline x86-64, where it showed up in profiles of this generator.
+///
+/// Below 2^52 the truncation `x as i64` is exact and so is the fractional part `x - t`
+/// (it lies on x's own ulp grid), so the comparison with ±0.5 decides exactly; at or above
+/// 2^52 every f64 is already an integer. `copysign` restores the sign of a zero result.
+fn round_fast(x: f64) -> f64 {
+    if x.is_nan() || x.abs() >= 4_503_599_627_370_496.0 {
+        return x; // ≥ 2^52, infinite or NaN: nothing to round.
+    }
+    let t = x as i64 as f64;
+    let frac = x - t;
+    let r = if frac >= 0.5 {
+        t + 1.0
+    } else if frac <= -0.5 {
+        t - 1.0
+    } else {
+        t
+    };
+    r.copysign(x)
+}
+
 fn clamp_share(share: f64, max: f64) -> f64 {
-    if share.is_finite() { share.clamp(0.0, max) } else { 0.0 }
+    if share.is_finite() {
+        share.clamp(0.0, max)
+    } else {
+        0.0
+    }
 }
 
 /// Seconds after midnight, drawn around `centre_sec` with standard deviation `sd_sec` and
@@ -279,7 +339,7 @@ fn time_near(rng: &mut ChaCha20Rng, centre_sec: u32, sd_sec: f64, lo_sec: u32, h
     let z: f64 = rng.sample(StandardNormal);
     let t = f64::from(centre_sec) + sd_sec * z;
     // The clamp keeps the value inside [lo, hi] ⊂ [0, 86400), so the cast cannot wrap.
-    t.round().clamp(f64::from(lo_sec), f64::from(hi_sec)) as u32
+    round_fast(t).clamp(f64::from(lo_sec), f64::from(hi_sec)) as u32
 }
 
 impl DemoFeed {
@@ -303,9 +363,15 @@ impl DemoFeed {
             card_ids,
             next_day: start_ms.div_euclid(DAY_MS),
             // The day holding the last covered millisecond; an empty span plans nothing.
-            last_day: if end_ms > start_ms { (end_ms - 1).div_euclid(DAY_MS) } else { i64::MIN },
+            last_day: if end_ms > start_ms {
+                (end_ms - 1).div_euclid(DAY_MS)
+            } else {
+                i64::MIN
+            },
             day_ms: 0,
             plan: Vec::new(),
+            unsorted: Vec::new(),
+            taps_per_sec: Vec::new(),
             plan_pos: 0,
             episodes: Vec::new(),
             feed_time: None,
@@ -339,23 +405,52 @@ impl DemoFeed {
                     3 => rng.random_range(1..=2),
                     _ => n_rides / 2,
                 };
-                let morning = time_near(rng, profile.morning_sec, 480.0, 6 * HOUR_SECS, 10 * HOUR_SECS);
-                let evening = time_near(rng, profile.evening_sec, 600.0, 15 * HOUR_SECS, 20 * HOUR_SECS);
-                for (first_sec, n_legs, leg) in [(morning, n_morning, Leg::Home), (evening, n_rides - n_morning, Leg::Work)] {
+                let morning = time_near(
+                    rng,
+                    profile.morning_sec,
+                    480.0,
+                    6 * HOUR_SECS,
+                    10 * HOUR_SECS,
+                );
+                let evening = time_near(
+                    rng,
+                    profile.evening_sec,
+                    600.0,
+                    15 * HOUR_SECS,
+                    20 * HOUR_SECS,
+                );
+                for (first_sec, n_legs, leg) in [
+                    (morning, n_morning, Leg::Home),
+                    (evening, n_rides - n_morning, Leg::Work),
+                ] {
                     let mut sec_of_day = first_sec;
                     for _ in 0..n_legs {
-                        self.plan.push(PlannedTap { sec_of_day, card_idx, leg });
+                        self.plan.push(PlannedTap {
+                            sec_of_day,
+                            card_idx,
+                            leg,
+                            rider: profile.rider,
+                        });
                         // A connecting ride 8-25 minutes later (still well before midnight).
                         sec_of_day += rng.random_range(480..=1_500);
                     }
                 }
             } else {
-                let rides_pct = if profile.commuter { &WEEKEND_COMMUTER_RIDES_PCT } else { &OCCASIONAL_RIDES_PCT };
+                let rides_pct = if profile.commuter {
+                    &WEEKEND_COMMUTER_RIDES_PCT
+                } else {
+                    &OCCASIONAL_RIDES_PCT
+                };
                 let n_rides = weighted_index(rng, rides_pct);
                 for _ in 0..n_rides {
                     let hour = weighted_index(rng, &OCCASIONAL_HOUR_WEIGHTS) as u32;
                     let sec_of_day = hour * HOUR_SECS + rng.random_range(0..HOUR_SECS);
-                    self.plan.push(PlannedTap { sec_of_day, card_idx, leg: Leg::Any });
+                    self.plan.push(PlannedTap {
+                        sec_of_day,
+                        card_idx,
+                        leg: Leg::Any,
+                        rider: profile.rider,
+                    });
                 }
             }
         }
@@ -364,6 +459,8 @@ impl DemoFeed {
             let n_episodes = (n_cards / CARDS_PER_STUCK_EPISODE).max(1);
             for episode_idx in 0..n_episodes {
                 let card_idx = rng.random_range(0..n_cards);
+                // In range: card_idx < n_cards = cards.len().
+                let rider = self.cards[card_idx as usize].rider;
                 let zone = weighted_index(rng, &ZONE_WEIGHTS);
                 let mode = weighted_index(rng, &MODE_WEIGHTS_BY_ZONE[zone]);
                 self.episodes.push((mode as u8, zone as u8));
@@ -372,24 +469,52 @@ impl DemoFeed {
                 let n_taps: u32 = rng.random_range(30..=200);
                 for _ in 0..n_taps {
                     let sec_of_day = first_sec + rng.random_range(0..HOUR_SECS);
-                    self.plan.push(PlannedTap { sec_of_day, card_idx, leg: Leg::Stuck(episode_idx) });
+                    self.plan.push(PlannedTap {
+                        sec_of_day,
+                        card_idx,
+                        leg: Leg::Stuck(episode_idx),
+                        rider,
+                    });
                 }
             }
         }
         let (day_ms, start_ms, end_ms) = (self.day_ms, self.start_ms, self.end_ms);
         self.plan.retain(|tap| {
             let ts = day_ms + i64::from(tap.sec_of_day) * 1000;
-            debug_assert!(tap.sec_of_day < DAY_SECS);
-            (start_ms..end_ms).contains(&ts)
+            // Every time drawn above is before 23:00; checking `< DAY_SECS` anyway keeps
+            // the counting sort's indices in range should that ever change.
+            tap.sec_of_day < DAY_SECS && (start_ms..end_ms).contains(&ts)
         });
-        self.plan.sort_unstable();
+        self.sort_plan_by_time();
+    }
+
+    /// Stable counting sort of the plan by second of the day: O(taps + 86 400), and taps
+    /// of the same second keep the (deterministic) order in which they were planned.
+    fn sort_plan_by_time(&mut self) {
+        self.taps_per_sec.clear();
+        self.taps_per_sec.resize(DAY_SECS as usize + 1, 0);
+        // plan_day kept only taps with sec_of_day < DAY_SECS, so indices stay in range.
+        for tap in &self.plan {
+            self.taps_per_sec[tap.sec_of_day as usize + 1] += 1;
+        }
+        for sec in 1..self.taps_per_sec.len() {
+            self.taps_per_sec[sec] += self.taps_per_sec[sec - 1];
+        }
+        // Now taps_per_sec[s] is the first slot of second s.
+        std::mem::swap(&mut self.plan, &mut self.unsorted);
+        self.plan.clear();
+        self.plan.resize(self.unsorted.len(), PlannedTap::FILLER);
+        for tap in &self.unsorted {
+            let slot = &mut self.taps_per_sec[tap.sec_of_day as usize];
+            self.plan[*slot as usize] = *tap;
+            *slot += 1;
+        }
     }
 
     /// Draws the trip and fare of one planned tap and renders it (good, late or bad).
     fn emit(&mut self, tap: PlannedTap) -> Vec<u8> {
         let rng = &mut self.rng;
-        // Indexing is safe: card_idx < cards.len() by construction of the plan.
-        let profile = self.cards[tap.card_idx as usize];
+        let rider = tap.rider;
         let (mode_idx, zone_idx) = match tap.leg {
             // Episode indices come from this day's plan, which filled `episodes`.
             Leg::Stuck(episode_idx) => {
@@ -398,8 +523,8 @@ impl DemoFeed {
             }
             leg => {
                 let usual = match leg {
-                    Leg::Home => Some(profile.home_zone),
-                    Leg::Work => Some(profile.work_zone),
+                    Leg::Home => Some(rider.home_zone),
+                    Leg::Work => Some(rider.work_zone),
                     _ => None,
                 };
                 let zone = match usual {
@@ -409,7 +534,7 @@ impl DemoFeed {
                 (weighted_index(rng, &MODE_WEIGHTS_BY_ZONE[zone]), zone)
             }
         };
-        let trip = draw_trip(rng, &profile, mode_idx, zone_idx);
+        let trip = draw_trip(rng, &rider, mode_idx, zone_idx);
 
         let category: f64 = rng.random();
         let planned_ms = self.day_ms + i64::from(tap.sec_of_day) * 1000;
@@ -423,7 +548,7 @@ impl DemoFeed {
             // maximum event time sees the lag too. Before any on-time event there is no
             // feed time to lag, and the line goes out on time.
             if let Some(feed_time) = self.feed_time {
-                ts = feed_time - i64::from(rng.random_range(360u32..=1_800)) * 1000;
+                ts = feed_time.saturating_sub(i64::from(rng.random_range(360u32..=1_800)) * 1000);
                 late = true;
             }
         }
@@ -486,16 +611,32 @@ impl Iterator for DemoFeed {
 
 fn draw_profile(rng: &mut ChaCha20Rng) -> CardProfile {
     let z: f64 = rng.sample(StandardNormal);
-    CardProfile {
-        commuter: rng.random_bool(COMMUTER_SHARE),
+    let commuter = rng.random_bool(COMMUTER_SHARE);
+    let rider = Rider {
         child: rng.random_bool(CHILD_SHARE),
         concession: rng.random_bool(CONCESSION_SHARE),
         home_zone: weighted_index(rng, &ZONE_WEIGHTS) as u8,
         work_zone: weighted_index(rng, &ZONE_WEIGHTS) as u8,
+        km_scale: (0.3 * z).exp() as f32,
+    };
+    CardProfile {
+        commuter,
         // Habits: leave around 08:00 (sd 35 min) and 17:30 (sd 45 min).
-        morning_sec: time_near(rng, 8 * HOUR_SECS, 2_100.0, 6 * HOUR_SECS + 1_800, 9 * HOUR_SECS + 1_800),
-        evening_sec: time_near(rng, 17 * HOUR_SECS + 1_800, 2_700.0, 15 * HOUR_SECS + 2_700, 19 * HOUR_SECS + 1_800),
-        km_scale: (0.3 * z).exp(),
+        morning_sec: time_near(
+            rng,
+            8 * HOUR_SECS,
+            2_100.0,
+            6 * HOUR_SECS + 1_800,
+            9 * HOUR_SECS + 1_800,
+        ),
+        evening_sec: time_near(
+            rng,
+            17 * HOUR_SECS + 1_800,
+            2_700.0,
+            15 * HOUR_SECS + 2_700,
+            19 * HOUR_SECS + 1_800,
+        ),
+        rider,
     }
 }
 
@@ -513,35 +654,58 @@ struct Trip {
 /// *rounded* length, so the printed `trip_km` is exactly the regressor of the true model
 /// and only the duration carries rounding error (uniform, variance 0.1²/12 ≈ 0.0008 min²,
 /// negligible beside the model's 9 min²).
-fn draw_trip(rng: &mut ChaCha20Rng, profile: &CardProfile, mode_idx: usize, zone_idx: usize) -> Trip {
+fn draw_trip(rng: &mut ChaCha20Rng, rider: &Rider, mode_idx: usize, zone_idx: usize) -> Trip {
     // Median ride length by mode (tram, ferry, bus); airport-link rides run twice as far.
     const MEDIAN_KM: [f64; 3] = [3.0, 5.5, 4.0];
-    let zone_factor = if ZONES[zone_idx] == "airport-link" { 2.0 } else { 1.0 };
+    let zone_factor = if ZONES[zone_idx] == "airport-link" {
+        2.0
+    } else {
+        1.0
+    };
     let z: f64 = rng.sample(StandardNormal);
-    let km_raw = (MEDIAN_KM[mode_idx] * zone_factor * profile.km_scale * (0.6 * z).exp()).min(MAX_TRIP_KM);
-    let km = (km_raw * 10.0).round() / 10.0;
+    let km_raw = (MEDIAN_KM[mode_idx] * zone_factor * f64::from(rider.km_scale) * (0.6 * z).exp())
+        .min(MAX_TRIP_KM);
+    let km = round_fast(km_raw * 10.0) / 10.0;
     // Longer rides need more changes: three chances, each likelier with distance.
     let p_transfer = (0.04 + km / 40.0).min(0.45);
-    let transfers = (0..3).map(|_| u32::from(rng.random_bool(p_transfer))).sum::<u32>();
+    let transfers = (0..3)
+        .map(|_| u32::from(rng.random_bool(p_transfer)))
+        .sum::<u32>();
     let noise: f64 = rng.sample(StandardNormal);
-    let minutes_raw = TRUE_INTERCEPT + TRUE_KM * km + TRUE_TRANSFERS * f64::from(transfers) + TRUE_NOISE_SD * noise;
-    let minutes = (minutes_raw.max(1.0) * 10.0).round() / 10.0;
+    let minutes_raw = TRUE_INTERCEPT
+        + TRUE_KM * km
+        + TRUE_TRANSFERS * f64::from(transfers)
+        + TRUE_NOISE_SD * noise;
+    let minutes = round_fast(minutes_raw.max(1.0) * 10.0) / 10.0;
 
     // Fares: a base by mode plus a distance part, rounded to 10 cents and capped at 900.
     const BASE_CENTS: [f64; 3] = [180.0, 320.0, 160.0];
     let fare_cents = if rng.random_bool(MALFORMED_FARE_SHARE) {
         // A broken reader: negative or absurdly large, but still a JSON integer.
-        if rng.random_bool(0.5) { -rng.random_range(1..=1_000) } else { rng.random_range(10_000..=1_000_000) }
-    } else if profile.child {
+        if rng.random_bool(0.5) {
+            -rng.random_range(1..=1_000)
+        } else {
+            rng.random_range(10_000..=1_000_000)
+        }
+    } else if rider.child {
         0
     } else {
-        let surcharge = if ZONES[zone_idx] == "airport-link" { 150.0 } else { 0.0 };
+        let surcharge = if ZONES[zone_idx] == "airport-link" {
+            150.0
+        } else {
+            0.0
+        };
         let full = BASE_CENTS[mode_idx] + 22.0 * (km - 2.0).max(0.0) + surcharge;
-        let price = if profile.concession { full / 2.0 } else { full };
+        let price = if rider.concession { full / 2.0 } else { full };
         // Bounded in [80, 900] before the cast.
-        ((price / 10.0).round() * 10.0).min(900.0) as i64
+        (round_fast(price / 10.0) * 10.0).min(900.0) as i64
     };
-    Trip { fare_cents, km, minutes, transfers }
+    Trip {
+        fare_cents,
+        km,
+        minutes,
+        transfers,
+    }
 }
 
 /// How a bad line is broken. Each is a mistake real feeds make; each makes the line
@@ -613,17 +777,16 @@ fn write_event(out: &mut Vec<u8>, ev: &EventFields<'_>, defect: Defect) {
     }
     out.push(b'{');
     let mut first = true;
-    let mut key = |out: &mut Vec<u8>, name: &str| {
+    // `name` is the quoted key with its colon, e.g. `"ts":`.
+    let mut key = |out: &mut Vec<u8>, name: &[u8]| {
         if !first {
             out.push(b',');
         }
         first = false;
-        out.push(b'"');
-        out.extend_from_slice(name.as_bytes());
-        out.extend_from_slice(b"\":");
+        out.extend_from_slice(name);
     };
     if defect != Defect::MissingTs {
-        key(out, "ts");
+        key(out, br#""ts":"#);
         if defect == Defect::TsNotTime {
             out.extend_from_slice(b"true");
         } else if ev.ts_as_integer || !(MIN_EVENT_TIME..=MAX_EVENT_TIME).contains(&ev.ts) {
@@ -635,22 +798,22 @@ fn write_event(out: &mut Vec<u8>, ev: &EventFields<'_>, defect: Defect) {
         }
     }
     if defect != Defect::MissingCard {
-        key(out, "card");
+        key(out, br#""card":"#);
         if defect == Defect::NonUtf8Card {
             write_broken_string(out, ev.card);
         } else {
             write_json_string(out, ev.card);
         }
     }
-    key(out, "mode");
+    key(out, br#""mode":"#);
     write_json_string(out, ev.mode);
-    key(out, "zone");
+    key(out, br#""zone":"#);
     match defect {
         Defect::UnknownZone(zone) => write_json_string(out, zone.as_bytes()),
         Defect::NonUtf8Zone => write_broken_string(out, ev.zone),
         _ => write_json_string(out, ev.zone),
     }
-    key(out, "fare_cents");
+    key(out, br#""fare_cents":"#);
     if defect == Defect::FareAsString {
         out.push(b'"');
         write_i64(out, ev.fare_cents);
@@ -658,7 +821,7 @@ fn write_event(out: &mut Vec<u8>, ev: &EventFields<'_>, defect: Defect) {
     } else {
         write_i64(out, ev.fare_cents);
     }
-    key(out, "trip_km");
+    key(out, br#""trip_km":"#);
     if defect == Defect::KmAsArray {
         out.push(b'[');
         write_f64(out, ev.trip_km);
@@ -666,9 +829,9 @@ fn write_event(out: &mut Vec<u8>, ev: &EventFields<'_>, defect: Defect) {
     } else {
         write_f64(out, ev.trip_km);
     }
-    key(out, "trip_minutes");
+    key(out, br#""trip_minutes":"#);
     write_f64(out, ev.trip_minutes);
-    key(out, "transfers");
+    key(out, br#""transfers":"#);
     write_i64(out, i64::from(ev.transfers));
     out.push(b'}');
 }
@@ -688,6 +851,15 @@ fn write_broken_string(out: &mut Vec<u8>, s: &[u8]) {
 fn write_json_string(out: &mut Vec<u8>, s: &[u8]) {
     const HEX: &[u8; 16] = b"0123456789abcdef";
     out.push(b'"');
+    // Fast path: generator ids and categories never need escaping.
+    if !s
+        .iter()
+        .any(|&byte| byte == b'"' || byte == b'\\' || byte < 0x20)
+    {
+        out.extend_from_slice(s);
+        out.push(b'"');
+        return;
+    }
     for &byte in s {
         match byte {
             b'"' => out.extend_from_slice(b"\\\""),
@@ -695,7 +867,14 @@ fn write_json_string(out: &mut Vec<u8>, s: &[u8]) {
             b'\n' => out.extend_from_slice(b"\\n"),
             b'\r' => out.extend_from_slice(b"\\r"),
             b'\t' => out.extend_from_slice(b"\\t"),
-            0..=0x1f => out.extend_from_slice(&[b'\\', b'u', b'0', b'0', HEX[usize::from(byte >> 4)], HEX[usize::from(byte & 0xf)]]),
+            0..=0x1f => out.extend_from_slice(&[
+                b'\\',
+                b'u',
+                b'0',
+                b'0',
+                HEX[usize::from(byte >> 4)],
+                HEX[usize::from(byte & 0xf)],
+            ]),
             _ => out.push(byte),
         }
     }
@@ -734,8 +913,9 @@ fn write_f64(out: &mut Vec<u8>, value: f64) {
         out.extend_from_slice(b"null");
         return;
     }
-    let tenths = (value * 10.0).round();
-    if tenths.abs() < 1e12 && tenths / 10.0 == value && !(value == 0.0 && value.is_sign_negative()) {
+    let tenths = round_fast(value * 10.0);
+    if tenths.abs() < 1e12 && tenths / 10.0 == value && !(value == 0.0 && value.is_sign_negative())
+    {
         // |tenths| < 1e12, so the cast is exact.
         let tenths = tenths as i64;
         if tenths < 0 {
@@ -743,7 +923,7 @@ fn write_f64(out: &mut Vec<u8>, value: f64) {
         }
         let magnitude = tenths.unsigned_abs();
         write_i64(out, (magnitude / 10) as i64);
-        if magnitude % 10 != 0 {
+        if !magnitude.is_multiple_of(10) {
             out.push(b'.');
             out.push(b'0' + (magnitude % 10) as u8);
         }
@@ -773,29 +953,28 @@ fn write_rfc3339(out: &mut Vec<u8>, ts: Millis) {
     let month = if mp < 10 { mp + 3 } else { mp - 9 };
     let year = yoe + era * 400 + i64::from(month <= 2);
 
-    let two = |out: &mut Vec<u8>, v: i64| {
-        out.push(b'0' + (v / 10) as u8);
-        out.push(b'0' + (v % 10) as u8);
-    };
-    two(out, year / 100);
-    two(out, year % 100);
-    out.push(b'-');
-    two(out, month);
-    out.push(b'-');
-    two(out, day);
-    out.push(b'T');
-    two(out, ms_of_day / 3_600_000);
-    out.push(b':');
-    two(out, ms_of_day / 60_000 % 60);
-    out.push(b':');
-    two(out, ms_of_day / 1_000 % 60);
-    let ms = ms_of_day % 1_000;
-    if ms != 0 {
-        out.push(b'.');
-        out.push(b'0' + (ms / 100) as u8);
-        two(out, ms % 100);
+    // Filled in place and appended once: this runs for every line.
+    let mut text = *b"0000-00-00T00:00:00.000Z";
+    fn two(text: &mut [u8; 24], at: usize, v: i64) {
+        text[at] = b'0' + (v / 10) as u8;
+        text[at + 1] = b'0' + (v % 10) as u8;
     }
-    out.push(b'Z');
+    two(&mut text, 0, year / 100);
+    two(&mut text, 2, year % 100);
+    two(&mut text, 5, month);
+    two(&mut text, 8, day);
+    two(&mut text, 11, ms_of_day / 3_600_000);
+    two(&mut text, 14, ms_of_day / 60_000 % 60);
+    two(&mut text, 17, ms_of_day / 1_000 % 60);
+    let ms = ms_of_day % 1_000;
+    if ms == 0 {
+        text[19] = b'Z';
+        out.extend_from_slice(&text[..20]);
+    } else {
+        text[20] = b'0' + (ms / 100) as u8;
+        two(&mut text, 21, ms % 100);
+        out.extend_from_slice(&text);
+    }
 }
 
 /// Renders one good event line (no trailing newline) exactly as the feed does, with `ts`
@@ -843,7 +1022,13 @@ mod tests {
     /// The categories of scenario.md ("One event"), written out here rather than taken
     /// from the module under test.
     const SCENARIO_MODES: [&str; 3] = ["tram", "ferry", "bus"];
-    const SCENARIO_ZONES: [&str; 5] = ["harbour", "old-town", "uplands", "riverside", "airport-link"];
+    const SCENARIO_ZONES: [&str; 5] = [
+        "harbour",
+        "old-town",
+        "uplands",
+        "riverside",
+        "airport-link",
+    ];
 
     /// One good line, as an independent reader sees it.
     #[derive(Clone, Debug)]
@@ -883,7 +1068,8 @@ mod tests {
             trip_minutes: object.get("trip_minutes")?.as_f64()?,
             transfers: object.get("transfers")?.as_u64()?,
         };
-        let known = SCENARIO_MODES.contains(&seen.mode.as_str()) && SCENARIO_ZONES.contains(&seen.zone.as_str());
+        let known = SCENARIO_MODES.contains(&seen.mode.as_str())
+            && SCENARIO_ZONES.contains(&seen.zone.as_str());
         known.then_some(seen)
     }
 
@@ -949,17 +1135,28 @@ mod tests {
         let mean = n as f64 * p;
         let sd = (n as f64 * p * (1.0 - p)).sqrt();
         let off = (observed as f64 - mean).abs();
-        assert!(off <= 5.0 * sd, "{what}: {observed} of {n}, expected {mean:.1} ± 5·{sd:.2}");
+        assert!(
+            off <= 5.0 * sd,
+            "{what}: {observed} of {n}, expected {mean:.1} ± 5·{sd:.2}"
+        );
     }
 
     #[test]
     fn same_seed_same_lines_other_seed_differs() {
-        let spec = FeedSpec { n_cards: 2_000, days: 2, ..FeedSpec::default() };
+        let spec = FeedSpec {
+            n_cards: 2_000,
+            days: 2,
+            ..FeedSpec::default()
+        };
         let first: Vec<Vec<u8>> = DemoFeed::new(&spec).collect();
         let second: Vec<Vec<u8>> = DemoFeed::new(&spec).collect();
         assert!(first.len() > 5_000, "{} lines", first.len());
         assert_eq!(first, second);
-        let other: Vec<Vec<u8>> = DemoFeed::new(&FeedSpec { seed: spec.seed + 1, ..spec.clone() }).collect();
+        let other: Vec<Vec<u8>> = DemoFeed::new(&FeedSpec {
+            seed: spec.seed + 1,
+            ..spec.clone()
+        })
+        .collect();
         assert_ne!(first, other);
         // Not just a shifted copy: most lines differ position by position.
         let n_same = first.iter().zip(&other).filter(|(a, b)| a == b).count();
@@ -968,19 +1165,37 @@ mod tests {
 
     #[test]
     fn bad_and_late_counts_match_spec_and_what_a_reader_sees() {
-        let busy = FeedSpec { n_cards: 1_500, days: 3, bad_line_share: 0.2, late_share: 0.1, ..FeedSpec::default() };
-        for (analysis, spec) in [(default_week(), FeedSpec::default()), (&analyse(&busy), busy)] {
+        let busy = FeedSpec {
+            n_cards: 1_500,
+            days: 3,
+            bad_line_share: 0.2,
+            late_share: 0.1,
+            ..FeedSpec::default()
+        };
+        for (analysis, spec) in [
+            (default_week(), FeedSpec::default()),
+            (&analyse(&busy), busy),
+        ] {
             let stats = analysis.stats;
             assert_eq!(stats.lines, analysis.n_lines);
             // Each line is bad with probability bad_line_share, independently of how many
             // lines the day plan holds, so bad ~ Bin(lines, p); likewise late (the first
             // few lines, before any feed time exists, cannot be late: a negligible shift).
-            assert_binomial(stats.bad_lines, stats.lines, spec.bad_line_share, "bad lines");
+            assert_binomial(
+                stats.bad_lines,
+                stats.lines,
+                spec.bad_line_share,
+                "bad lines",
+            );
             assert_binomial(stats.late_lines, stats.lines, spec.late_share, "late lines");
             // The generator's bookkeeping agrees with an independent reader.
             assert_eq!(stats.bad_lines, analysis.n_unreadable, "unreadable lines");
             assert_eq!(stats.late_lines, analysis.n_lagging, "lagging lines");
-            assert!(analysis.max_lag_ms <= 30 * 60_000, "lag {} ms", analysis.max_lag_ms);
+            assert!(
+                analysis.max_lag_ms <= 30 * 60_000,
+                "lag {} ms",
+                analysis.max_lag_ms
+            );
             assert!(analysis.on_time_ordered, "on-time lines out of order");
             assert!(!analysis.has_newline);
         }
@@ -996,10 +1211,26 @@ mod tests {
         let mut zones = HashSet::new();
         for seen in &week.good {
             // Late lines may lag the start by up to 30 minutes; nothing reaches the end.
-            assert!(seen.ts.0 >= spec.start.0 - 30 * 60_000 && seen.ts.0 < end, "ts {:?}", seen.ts);
-            assert!(seen.card.len() == 8 && seen.card.starts_with("c-"), "card {}", seen.card);
-            assert!(seen.card[2..].bytes().all(|b| b.is_ascii_digit() || (b'a'..=b'f').contains(&b)));
-            assert!((0.0..=MAX_TRIP_KM).contains(&seen.trip_km), "km {}", seen.trip_km);
+            assert!(
+                seen.ts.0 >= spec.start.0 - 30 * 60_000 && seen.ts.0 < end,
+                "ts {:?}",
+                seen.ts
+            );
+            assert!(
+                seen.card.len() == 8 && seen.card.starts_with("c-"),
+                "card {}",
+                seen.card
+            );
+            assert!(
+                seen.card[2..]
+                    .bytes()
+                    .all(|b| b.is_ascii_digit() || (b'a'..=b'f').contains(&b))
+            );
+            assert!(
+                (0.0..=MAX_TRIP_KM).contains(&seen.trip_km),
+                "km {}",
+                seen.trip_km
+            );
             assert!(seen.trip_minutes >= 1.0, "minutes {}", seen.trip_minutes);
             assert!(seen.transfers <= 3);
             modes.insert(seen.mode.clone());
@@ -1009,16 +1240,33 @@ mod tests {
         assert_eq!(zones.len(), 5);
         // Cards: at most the population; almost everyone rides in a week (an occasional
         // rider stays home all week with probability 0.55^7 ≈ 1.5%).
-        let n_distinct = week.good.iter().map(|seen| seen.card.as_str()).collect::<HashSet<_>>().len();
-        assert!(n_distinct <= 20_000 && n_distinct >= 19_000, "{n_distinct} distinct cards");
+        let n_distinct = week
+            .good
+            .iter()
+            .map(|seen| seen.card.as_str())
+            .collect::<HashSet<_>>()
+            .len();
+        assert!(
+            (19_000..=20_000).contains(&n_distinct),
+            "{n_distinct} distinct cards"
+        );
     }
 
     #[test]
     fn malformed_fares_are_rare_and_the_rest_in_range() {
         let week = default_week();
-        let n_out = week.good.iter().filter(|seen| !(0..=900).contains(&seen.fare_cents)).count();
+        let n_out = week
+            .good
+            .iter()
+            .filter(|seen| !(0..=900).contains(&seen.fare_cents))
+            .count();
         // Each good line's fare comes from a broken reader with probability 0.002, alone.
-        assert_binomial(n_out as u64, week.good.len() as u64, MALFORMED_FARE_SHARE, "malformed fares");
+        assert_binomial(
+            n_out as u64,
+            week.good.len() as u64,
+            MALFORMED_FARE_SHARE,
+            "malformed fares",
+        );
         assert!(week.good.iter().any(|seen| seen.fare_cents < 0));
         assert!(week.good.iter().any(|seen| seen.fare_cents > 9_000));
         // Children ride free.
@@ -1030,15 +1278,27 @@ mod tests {
         let week = default_week();
         let mut per_card_hour: HashMap<(&str, i64), u32> = HashMap::new();
         for seen in &week.good {
-            *per_card_hour.entry((seen.card.as_str(), seen.ts.0.div_euclid(3_600_000))).or_default() += 1;
+            *per_card_hour
+                .entry((seen.card.as_str(), seen.ts.0.div_euclid(3_600_000)))
+                .or_default() += 1;
         }
-        // Ordinary riders tap at most 4 times a day; the 2 episodes a day (20 000 cards /
-        // 10 000) of 30-200 taps within one hour land at least 15 taps in some clock hour.
-        let n_heavy = per_card_hour.values().filter(|&&n| n >= 15).count();
-        assert!((1..=14).contains(&n_heavy) || n_heavy <= 28, "{n_heavy} heavy card-hours");
-        assert!(n_heavy >= 7, "{n_heavy} heavy card-hours");
+        // 2 episodes a day (20 000 cards / 10 000), each 30-200 taps within one hour, so
+        // spread over at most 2 clock hours: one of them holds at least 15 taps (pigeonhole;
+        // the ~1% of lines lost to bad lines or moved by lateness does not change that at
+        // this seed), and at most 2 hours per episode can. Ordinary riders tap at most 4
+        // times a day, so no other card-hour reaches 15.
         let n_episodes = 7 * 2;
-        assert!((30 * n_episodes..=200 * n_episodes).contains(&week.stats.spam_lines), "{}", week.stats.spam_lines);
+        let n_heavy = per_card_hour.values().filter(|&&n| n >= 15).count() as u64;
+        assert!(
+            (n_episodes..=2 * n_episodes).contains(&n_heavy),
+            "{n_heavy} heavy card-hours"
+        );
+        assert!(per_card_hour.values().any(|&n| n >= 30));
+        assert!(
+            (30 * n_episodes..=200 * n_episodes).contains(&week.stats.spam_lines),
+            "{}",
+            week.stats.spam_lines
+        );
     }
 
     #[test]
@@ -1089,9 +1349,16 @@ mod tests {
         // (noise plus rounding to 0.1), so sd(β̂_j) = σ_e·√((XᵀX)⁻¹_jj) (Gauss–Markov; the
         // Gaussian noise makes β̂ exactly normal). Tolerance: 5 sd, as in assert_binomial.
         let sigma_e = (TRUE_NOISE_SD.powi(2) + 0.01 / 12.0).sqrt();
-        for (j, truth) in [TRUE_INTERCEPT, TRUE_KM, TRUE_TRANSFERS].into_iter().enumerate() {
+        for (j, truth) in [TRUE_INTERCEPT, TRUE_KM, TRUE_TRANSFERS]
+            .into_iter()
+            .enumerate()
+        {
             let sd = sigma_e * inverse[(j, j)].sqrt();
-            assert!((beta[j] - truth).abs() <= 5.0 * sd, "coefficient {j}: {} vs {truth} (sd {sd})", beta[j]);
+            assert!(
+                (beta[j] - truth).abs() <= 5.0 * sd,
+                "coefficient {j}: {} vs {truth} (sd {sd})",
+                beta[j]
+            );
         }
         // The km slope is pinned down to within a few hundredths.
         assert!(sigma_e * inverse[(1, 1)].sqrt() < 0.01);
@@ -1099,28 +1366,65 @@ mod tests {
 
     #[test]
     fn shares_are_sanitised() {
-        let base = FeedSpec { n_cards: 300, days: 1, ..FeedSpec::default() };
-        let mut all_bad = DemoFeed::new(&FeedSpec { bad_line_share: 2.0, late_share: 0.5, ..base.clone() });
+        let base = FeedSpec {
+            n_cards: 300,
+            days: 1,
+            ..FeedSpec::default()
+        };
+        let mut all_bad = DemoFeed::new(&FeedSpec {
+            bad_line_share: 2.0,
+            late_share: 0.5,
+            ..base.clone()
+        });
         let n_lines = all_bad.by_ref().count() as u64;
         assert!(n_lines > 0);
         assert_eq!(all_bad.stats().bad_lines, n_lines);
         assert_eq!(all_bad.stats().late_lines, 0);
 
-        let mut clean = DemoFeed::new(&FeedSpec { bad_line_share: f64::NAN, late_share: -1.0, ..base.clone() });
+        let mut clean = DemoFeed::new(&FeedSpec {
+            bad_line_share: f64::NAN,
+            late_share: -1.0,
+            ..base.clone()
+        });
         assert!(clean.by_ref().all(|line| read_line(&line).is_some()));
         assert_eq!((clean.stats().bad_lines, clean.stats().late_lines), (0, 0));
     }
 
     #[test]
     fn empty_specs_give_empty_feeds_and_the_span_is_respected() {
-        assert_eq!(DemoFeed::new(&FeedSpec { n_cards: 0, ..FeedSpec::default() }).count(), 0);
-        assert_eq!(DemoFeed::new(&FeedSpec { days: 0, ..FeedSpec::default() }).count(), 0);
+        assert_eq!(
+            DemoFeed::new(&FeedSpec {
+                n_cards: 0,
+                ..FeedSpec::default()
+            })
+            .count(),
+            0
+        );
+        assert_eq!(
+            DemoFeed::new(&FeedSpec {
+                days: 0,
+                ..FeedSpec::default()
+            })
+            .count(),
+            0
+        );
         // A start in the middle of a day: on-time lines stay inside [start, start + 1 day).
         let start = Millis(FeedSpec::default().start.0 + 13 * 3_600_000 + 1_234);
-        let spec = FeedSpec { n_cards: 1_000, days: 1, start, late_share: 0.0, ..FeedSpec::default() };
+        let spec = FeedSpec {
+            n_cards: 1_000,
+            days: 1,
+            start,
+            late_share: 0.0,
+            ..FeedSpec::default()
+        };
         let analysis = analyse(&spec);
         assert!(analysis.good.len() > 500);
-        assert!(analysis.good.iter().all(|seen| (start.0..start.0 + DAY_MS).contains(&seen.ts.0)));
+        assert!(
+            analysis
+                .good
+                .iter()
+                .all(|seen| (start.0..start.0 + DAY_MS).contains(&seen.ts.0))
+        );
     }
 
     #[test]
@@ -1131,7 +1435,9 @@ mod tests {
         assert_eq!(ids.len(), 1 << 16);
         assert!(ids.iter().all(|&id| id < 1 << 24));
         let large = CardIdMap::new(u32::MAX, &mut rng);
-        let ids: HashSet<u64> = (0..1u32 << 16).map(|idx| large.id(idx.wrapping_mul(65_537))).collect();
+        let ids: HashSet<u64> = (0..1u32 << 16)
+            .map(|idx| large.id(idx.wrapping_mul(65_537)))
+            .collect();
         assert_eq!(ids.len(), 1 << 16);
         let mut buf = [0u8; 10];
         assert_eq!(large.render(3, &mut buf), 10);
@@ -1145,13 +1451,31 @@ mod tests {
             r#"{"ts":"2026-03-02T08:14:07Z","card":"c-7f3a91","mode":"tram","zone":"harbour","#,
             r#""fare_cents":240,"trip_km":3.8,"trip_minutes":14.5,"transfers":0}"#
         );
-        let line = event_line(Millis(1_772_439_247_000), "c-7f3a91", "tram", "harbour", 240, 3.8, 14.5, 0);
+        let line = event_line(
+            Millis(1_772_439_247_000),
+            "c-7f3a91",
+            "tram",
+            "harbour",
+            240,
+            3.8,
+            14.5,
+            0,
+        );
         assert_eq!(line, expected);
     }
 
     #[test]
     fn event_line_edge_values() {
-        let line = event_line(Millis(1_772_439_247_250), "a\"b\\c\n\u{1}é", "m", "z", -5, f64::NAN, -0.0, 3);
+        let line = event_line(
+            Millis(1_772_439_247_250),
+            "a\"b\\c\n\u{1}é",
+            "m",
+            "z",
+            -5,
+            f64::NAN,
+            -0.0,
+            3,
+        );
         let value: serde_json::Value = serde_json::from_str(&line).unwrap();
         assert_eq!(value["ts"], "2026-03-02T08:14:07.250Z");
         assert_eq!(value["card"], "a\"b\\c\n\u{1}é");
@@ -1178,6 +1502,18 @@ mod tests {
                 let mut out = Vec::new();
                 write_f64(&mut out, value);
                 prop_assert_eq!(String::from_utf8(out).unwrap(), format!("{value}"));
+            }
+        }
+
+        /// Reference: `f64::round`, bit for bit (signed zeros included).
+        #[test]
+        fn round_fast_matches_round(x in any::<f64>(), tenths in -1e7f64..1e7) {
+            for value in [x, tenths, tenths.trunc() + 0.5, tenths.trunc() - 0.5] {
+                if value.is_nan() {
+                    prop_assert!(round_fast(value).is_nan());
+                } else {
+                    prop_assert_eq!(round_fast(value).to_bits(), value.round().to_bits(), "{}", value);
+                }
             }
         }
 
