@@ -174,12 +174,14 @@ fn main() -> ExitCode {
             return ExitCode::from(code);
         }
     };
-    tracing_subscriber::fmt()
-        .with_writer(std::io::stderr)
-        .with_env_filter(
-            tracing_subscriber::EnvFilter::try_from_default_env().unwrap_or_else(|_| "warn".into()),
-        )
-        .init();
+    // Structured logs: human-readable on a terminal, JSON lines otherwise (journald, files).
+    // Log events carry counts and reasons only, never event contents or unit ids.
+    let filter = || tracing_subscriber::EnvFilter::try_from_default_env().unwrap_or_else(|_| "info".into());
+    if std::io::IsTerminal::is_terminal(&std::io::stderr()) {
+        tracing_subscriber::fmt().with_writer(std::io::stderr).with_env_filter(filter()).init();
+    } else {
+        tracing_subscriber::fmt().json().with_writer(std::io::stderr).with_env_filter(filter()).init();
+    }
     match run(cli) {
         Ok(()) => ExitCode::SUCCESS,
         Err(e) => {
