@@ -169,8 +169,8 @@ fn base_loads_with_contract_defaults() {
         c.privacy.unit_bounds,
         Some(UnitBounds {
             lifetime_rho: 4.0,
-            max_events_per_window: 2,
-            max_windows_per_epoch: 24
+            max_events_per_window: 4,
+            max_windows_per_epoch: 48
         })
     );
     assert_eq!(c.stats.len(), 4);
@@ -288,7 +288,8 @@ fn demo_config_loads_and_matches_the_scenario() {
     let StatKind::Linear(lin) = &c.stats[4].kind else {
         panic!("trip_model should be linear")
     };
-    assert_eq!((lin.feature_norm_bound, lin.target_bound), (40.0, 180.0));
+    assert_eq!((lin.feature_norm_bound, lin.target_bound), (30.0, 100.0));
+    assert_eq!(lin.feature_bounds.as_deref(), Some(&[30.0, 4.0][..]));
 }
 
 #[test]
