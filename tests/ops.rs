@@ -1081,7 +1081,8 @@ fn fixture_releases(seeded_leaf: Option<i64>) -> Vec<Value> {
             json!({"stat": "trip_minutes_mean", "kind": "mean", "scope": "window", "group": {},
                     "window_start": start, "window_end": end,
                     "value": if undefined { Value::Null } else { json!(14.0 + (h as f64 / 5.0).cos()) },
-                    "std_error": if undefined { Value::Null } else { json!(0.8) },
+                    // Window 40 had few rows: a band 50 times the usual width.
+                    "std_error": if undefined { Value::Null } else if h == 40 { json!(40.0) } else { json!(0.8) },
                     "note": if undefined { "noisy count below 1: the mean is undefined for this scope" } else { "std_error by the delta method (first order)" },
                     "epoch": 0, "leaf": h, "seeded": false}),
         );
@@ -1386,6 +1387,51 @@ fn dashboard_renders_the_unit_level_fixture_with_paging_bands_gaps_and_budget() 
         .find(|t| t.name == "path" && t.has_class("band"))
         .unwrap();
     assert_eq!(subpaths(band.attr("d").unwrap()), 3);
+    // Window 40's band (±1.96·40 = ±78) is 50 times the median band (±1.96·0.8). The y range
+    // must hold every value and every band cut at BAND_CAP = 4 median bands (the page's rule),
+    // so that one band is clipped at the plot edge instead of stretching the range.
+    let svg = inner
+        .iter()
+        .find(|t| t.name == "svg" && t.has_class("chart-svg"))
+        .unwrap();
+    assert_eq!(svg.attr("data-bands-clipped"), Some("1"));
+    let (y_min, y_max): (f64, f64) = (
+        svg.attr("data-y-min").unwrap().parse().unwrap(),
+        svg.attr("data-y-max").unwrap().parse().unwrap(),
+    );
+    let points: Vec<(f64, f64)> = releases
+        .iter()
+        .filter(|r| r["stat"] == "trip_minutes_mean" && r["value"].is_number())
+        .map(|r| {
+            (
+                r["value"].as_f64().unwrap(),
+                Z95 * r["std_error"].as_f64().unwrap(),
+            )
+        })
+        .collect();
+    let mut halves: Vec<f64> = points.iter().map(|p| p.1).collect();
+    halves.sort_by(f64::total_cmp);
+    let cap = 4.0 * halves[halves.len() / 2];
+    let lo = points
+        .iter()
+        .map(|(v, h)| v - h.min(cap))
+        .fold(f64::INFINITY, f64::min);
+    let hi = points
+        .iter()
+        .map(|(v, h)| v + h.min(cap))
+        .fold(f64::NEG_INFINITY, f64::max);
+    assert!(
+        y_min <= lo && hi <= y_max,
+        "[{y_min}, {y_max}] must hold [{lo}, {hi}]"
+    );
+    assert!(
+        y_max - y_min < 40.0,
+        "one wide band stretched the range to [{y_min}, {y_max}]"
+    );
+    assert!(
+        band.attr("clip-path")
+            .is_some_and(|c| c.starts_with("url(#plot-clip-"))
+    );
 
     // Every chart is drawn for the laid-out grid: the count chart (first panel drawn) is as
     // wide as the mean chart in the other column, and both fit in half the window.
