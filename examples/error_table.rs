@@ -11,26 +11,20 @@
 
 use scrim::engine::mechanism::{self, LeafRange, MechanismKind};
 
-/// Nodes of the plain binary mechanism used for the range [a, b] at time b: the prefix
-/// decompositions of b+1 and a (nodes shared by both cancel), as in privacy-math §4.
+/// Nodes of the plain binary mechanism used for the range [a, b]: its minimal dyadic cover
+/// (greedy: the largest aligned block starting at a that fits, repeatedly; privacy-math §4).
 fn plain_nodes(a: u32, b: u32) -> u32 {
-    let prefix = |t: u32| -> Vec<(u32, u32)> {
-        // Dyadic blocks of [0, t): one per set bit of t, largest first.
-        let mut out = Vec::new();
-        let mut start = 0;
-        for l in (0..32).rev() {
-            if t >> l & 1 == 1 {
-                out.push((l, start >> l));
-                start += 1 << l;
-            }
+    let (mut a, mut n) = (u64::from(a), 0);
+    let end = u64::from(b) + 1;
+    while a < end {
+        let mut size = 1u64;
+        while a % (size * 2) == 0 && a + size * 2 <= end {
+            size *= 2;
         }
-        out
-    };
-    let pb = prefix(b + 1);
-    let pa = prefix(a);
-    let sym = pb.iter().filter(|n| !pa.contains(n)).count()
-        + pa.iter().filter(|n| !pb.contains(n)).count();
-    sym as u32
+        a += size;
+        n += 1;
+    }
+    n
 }
 
 /// Node variance that makes one epoch cost ρ when Δ = 1, in units of 1/(2ρ): σ² = Δ₂²/(2ρ).

@@ -118,14 +118,28 @@ pub struct ReplaySummary {
     pub output: PathBuf,
     /// Set when the budget ran out during the replay.
     pub halted: Option<String>,
+    /// Unit level only: `(active units, bytes of the per-unit table)` at the end, from
+    /// [`crate::engine::bound::Bounder`] (issue 9 reports bytes per active unit).
+    pub unit_table: Option<(usize, usize)>,
+}
+
+/// `(active units, per-unit table bytes)` of a unit-level engine.
+fn unit_table(engine: &Engine) -> Option<(usize, usize)> {
+    engine.bounder().map(|b| (b.active_units(), b.unit_table_bytes()))
 }
 
 /// Feeds every line of `input` to `engine`, handing releases to `sink` as they appear.
+/// With `threads > 1` lines are parsed on that many threads
+/// ([`crate::runtime::parse_pool`]); the releases are the same for any `threads`.
 pub fn pump<R: Read>(
     engine: &mut Engine,
     input: R,
     sink: &mut dyn ReleaseSink,
+    threads: usize,
 ) -> std::io::Result<(u64, u64)> {
+    if threads > 1 {
+        return pump_parallel(engine, input, sink, threads);
+    }
     let mut reader = BufReader::with_capacity(1 << 20, input);
     let mut line = Vec::with_capacity(4096);
     let (mut n_lines, mut n_releases) = (0u64, 0u64);
@@ -157,15 +171,43 @@ pub fn pump<R: Read>(
     Ok((n_lines, n_releases))
 }
 
+/// [`pump`] with parsing on `threads` threads and the engine on the calling thread.
+fn pump_parallel<R: Read>(
+    engine: &mut Engine,
+    input: R,
+    sink: &mut dyn ReleaseSink,
+    threads: usize,
+) -> std::io::Result<(u64, u64)> {
+    let decoder = engine.line_decoder();
+    let mut n_releases = 0u64;
+    let n_lines = crate::runtime::parse_pool::decode_in_order(input, &decoder, threads, |parsed| {
+        engine.handle_parsed(parsed);
+        while let Some(r) = engine.poll_release() {
+            sink.publish(&r)?;
+            n_releases += 1;
+        }
+        Ok(())
+    })?;
+    engine.finish();
+    while let Some(r) = engine.poll_release() {
+        sink.publish(&r)?;
+        n_releases += 1;
+    }
+    sink.flush()?;
+    Ok((n_lines, n_releases))
+}
+
 /// `scrim replay`. With `state`, every consumed line is logged first (see
 /// [`crate::runtime::state`]), so an interrupted replay resumes where it stopped and never
-/// publishes a record twice or with different noise.
+/// publishes a record twice or with different noise. `threads` parse threads are used
+/// without `state` (see [`pump`]); with `state` lines are parsed on the calling thread.
 pub fn replay(
     config_path: &Path,
     out: Option<&Path>,
     state: Option<&Path>,
     key: KeySource,
     input: &str,
+    threads: usize,
 ) -> Result<ReplaySummary, AppError> {
     let config = Config::load(config_path)?;
     let out_dir = out
@@ -184,10 +226,10 @@ pub fn replay(
         let mut sink =
             JsonlSink::create(&out_dir).map_err(io(format!("creating {}", out_dir.display())))?;
         let (lines, releases) = if input == "-" {
-            pump(&mut engine, std::io::stdin().lock(), &mut sink)
+            pump(&mut engine, std::io::stdin().lock(), &mut sink, threads)
         } else {
             let f = std::fs::File::open(input).map_err(io(format!("opening input {input}")))?;
-            pump(&mut engine, f, &mut sink)
+            pump(&mut engine, f, &mut sink, threads)
         }
         .map_err(io(format!("replaying into {}", sink.path().display())))?;
         return Ok(ReplaySummary {
@@ -196,6 +238,7 @@ pub fn replay(
             releases,
             output: sink.path().to_path_buf(),
             halted: engine.halted().map(ToString::to_string),
+            unit_table: unit_table(&engine),
         });
     };
     if input == "-" {
@@ -345,6 +388,7 @@ fn replay_with_state(
         releases: n_releases,
         output: rel_path,
         halted: engine.halted().map(ToString::to_string),
+        unit_table: unit_table(&engine),
     })
 }
 

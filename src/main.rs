@@ -53,6 +53,10 @@ enum Command {
         /// Reproducible noise from this seed; releases are marked `seeded`.
         #[arg(long)]
         seed: Option<u64>,
+        /// Threads that parse lines (the engine runs on one of them); the releases are
+        /// the same for any number. Not used with --state.
+        #[arg(long, default_value_t = 1, value_parser = clap::value_parser!(u16).range(1..=256))]
+        threads: u16,
         /// Input file, or `-` for standard input.
         input: String,
     },
@@ -102,20 +106,8 @@ fn run(cli: Cli) -> Result<(), AppError> {
             app::demo(&args, &mut std::io::stdout().lock())?;
             Ok(())
         }
-        Command::Replay {
-            config,
-            out,
-            state,
-            seed,
-            input,
-        } => {
-            let s = app::replay(
-                &config,
-                out.as_deref(),
-                state.as_deref(),
-                key_source(seed),
-                &input,
-            )?;
+        Command::Replay { config, out, state, seed, threads, input } => {
+            let s = app::replay(&config, out.as_deref(), state.as_deref(), key_source(seed), &input, usize::from(threads))?;
             eprintln!(
                 "scrim replay: {} lines, {} accepted, {} rejected, {} late, {} releases -> {}",
                 s.lines,
@@ -125,6 +117,12 @@ fn run(cli: Cli) -> Result<(), AppError> {
                 s.releases,
                 s.output.display()
             );
+            if let Some((n_units, n_bytes)) = s.unit_table {
+                eprintln!(
+                    "scrim replay: unit table: {n_units} units, {} bytes/unit",
+                    if n_units == 0 { 0 } else { n_bytes.div_ceil(n_units) }
+                );
+            }
             match s.halted {
                 Some(reason) => Err(AppError::Budget(reason)),
                 None => Ok(()),

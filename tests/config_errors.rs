@@ -169,8 +169,8 @@ fn base_loads_with_contract_defaults() {
         c.privacy.unit_bounds,
         Some(UnitBounds {
             lifetime_rho: 4.0,
-            max_events_per_window: 4,
-            max_windows_per_epoch: 48
+            max_events_per_window: 2,
+            max_windows_per_epoch: 24
         })
     );
     assert_eq!(c.stats.len(), 4);
@@ -229,7 +229,7 @@ fn event_level_config_loads_without_unit_bounds() {
 #[test]
 fn demo_config_loads_and_matches_the_scenario() {
     // scenario.md: ts/card events, zones and modes as listed; the brief: hourly windows, one
-    // week epochs (7 × 24 = 168 windows), bounds 4 events/window and 48 windows/epoch.
+    // week epochs (7 × 24 = 168 windows), bounds 2 events/window and 24 windows/epoch.
     let c = Config::load_with_env(&manifest_path("config/demo.toml"), HashMap::new()).unwrap();
     assert_eq!(c.input.time_field, "ts");
     assert_eq!(c.input.unit_field.as_deref(), Some("card"));
@@ -242,8 +242,8 @@ fn demo_config_loads_and_matches_the_scenario() {
         c.privacy.unit_bounds,
         Some(UnitBounds {
             lifetime_rho: 4.0,
-            max_events_per_window: 4,
-            max_windows_per_epoch: 48
+            max_events_per_window: 2,
+            max_windows_per_epoch: 24
         })
     );
     let names: Vec<&str> = c.stats.iter().map(|s| s.name.as_str()).collect();

@@ -4,7 +4,7 @@
 //!
 //! External tools: `promtool` (Debian package `prometheus`), `chromium` and
 //! `systemd-analyze` (package `systemd`). When one is not on PATH the test that needs it
-//! prints `skipped: <tool> not installed` and passes, unless `SCRIM_CI_REQUIRE_TOOLS=1`,
+//! prints `skipped: <tool> not installed` and passes, unless `SCRIMTEST_REQUIRE_TOOLS=1`,
 //! which turns the skip into a failure (CI installs the tools and sets it). Variables that
 //! start with `SCRIM_` are configuration overrides for the daemon, so every child process
 //! started here gets an environment without them.
@@ -34,7 +34,7 @@ const Z95: f64 = 1.959963984540054;
 
 // ---- tools and processes -------------------------------------------------------------------
 
-/// Finds `name` on PATH. Missing: skip (None) or, under SCRIM_CI_REQUIRE_TOOLS=1, fail.
+/// Finds `name` on PATH. Missing: skip (None) or, under SCRIMTEST_REQUIRE_TOOLS=1, fail.
 fn tool(name: &str) -> Option<PathBuf> {
     let found = std::env::var_os("PATH").and_then(|paths| {
         std::env::split_paths(&paths)
@@ -47,8 +47,8 @@ fn tool(name: &str) -> Option<PathBuf> {
     });
     if found.is_none() {
         assert!(
-            std::env::var("SCRIM_CI_REQUIRE_TOOLS").as_deref() != Ok("1"),
-            "{name} not installed, and SCRIM_CI_REQUIRE_TOOLS=1 requires it (apt-get install chromium prometheus systemd)"
+            std::env::var("SCRIMTEST_REQUIRE_TOOLS").as_deref() != Ok("1"),
+            "{name} not installed, and SCRIMTEST_REQUIRE_TOOLS=1 requires it (apt-get install chromium prometheus systemd)"
         );
         println!("skipped: {name} not installed");
     }

@@ -15,11 +15,12 @@
 //! from the [`NoiseKey`] the caller passes in (see [`crate::engine::noise`]).
 
 use std::collections::{BTreeMap, VecDeque};
+use std::sync::Arc;
 
 use crate::config::Config;
 use crate::engine::bound::Bounder;
 use crate::engine::dd::Dd;
-use crate::engine::event::{Event, LineParser, RejectReason, Schema};
+use crate::engine::event::{Event, LineParser, RejectReason, Rejection, Schema};
 use crate::engine::ledger::{BudgetError, EpochCharge, Ledger};
 use crate::engine::linear;
 use crate::engine::mechanism::{self, ContinualMechanism, NodeAddr, NodeNoise};
@@ -138,7 +139,8 @@ impl NodeNoise for KeyedNoise<'_> {
 #[derive(Debug)]
 pub struct Engine {
     plan: Plan,
-    parser: LineParser,
+    /// Shared with [`LineDecoder`]s handed to parse workers; never mutated after `new`.
+    parser: Arc<LineParser>,
     key: NoiseKey,
     opts: EngineOptions,
     window_ms: i64,
@@ -215,7 +217,7 @@ impl Engine {
         };
         Ok(Engine {
             ledger: Ledger::new(plan.rho_per_epoch, lifetime),
-            parser,
+            parser: Arc::new(parser),
             key,
             opts,
             window_ms: config.window.length.0,
@@ -294,12 +296,23 @@ impl Engine {
 
     /// Parses and handles one input line (without its newline).
     pub fn handle_line(&mut self, line: &[u8]) {
-        let key = &self.key;
-        let hash = |raw: &[u8]| key.hash64("unit", raw);
-        match self.parser.parse(line, &hash) {
+        let parsed = decode_line(&self.parser, &self.key, line);
+        self.handle_parsed(parsed);
+    }
+
+    /// Handles the verdict of [`LineDecoder::decode`] on one line: `handle_line(l)` is
+    /// exactly `handle_parsed(decoder.decode(l))`, so parsing may run on other threads as
+    /// long as verdicts arrive here in input order.
+    pub fn handle_parsed(&mut self, parsed: Result<Event, Rejection>) {
+        match parsed {
             Ok(ev) => self.handle_event(ev),
             Err(rej) => self.reject(rej.reason.label()),
         }
+    }
+
+    /// A parser detached from the engine, for parsing lines on worker threads.
+    pub fn line_decoder(&self) -> LineDecoder {
+        LineDecoder { parser: Arc::clone(&self.parser), key: self.key.clone() }
     }
 
     fn reject(&mut self, label: &'static str) {
@@ -577,6 +590,33 @@ impl Engine {
             }
         }
     }
+}
+
+/// The engine's line parser with its keyed unit hash, detached from the engine so that
+/// lines can be parsed on other threads while the engine runs (parsing is pure). It holds
+/// a copy of the noise key (the unit hash is keyed), so it is as secret as the engine and
+/// is never serialised or logged (`Debug` redacts the key).
+#[derive(Clone, Debug)]
+pub struct LineDecoder {
+    parser: Arc<LineParser>,
+    key: NoiseKey,
+}
+
+impl LineDecoder {
+    /// Parses one line (without its newline) exactly as [`Engine::handle_line`] does.
+    pub fn decode(&self, line: &[u8]) -> Result<Event, Rejection> {
+        decode_line(&self.parser, &self.key, line)
+    }
+
+    /// The engine's parser, for callers that bring their own unit hash (benchmarks).
+    pub fn parser(&self) -> &LineParser {
+        &self.parser
+    }
+}
+
+/// The one place a line becomes an event: the unit id is replaced by its keyed hash.
+fn decode_line(parser: &LineParser, key: &NoiseKey, line: &[u8]) -> Result<Event, Rejection> {
+    parser.parse(line, &|raw: &[u8]| key.hash64("unit", raw))
 }
 
 /// Priority of an event for bottom-k bounding: a keyed hash of the unit and the event's

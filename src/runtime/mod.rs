@@ -25,5 +25,6 @@ pub fn now() -> Millis {
 pub mod daemon;
 pub mod http;
 pub mod metrics;
+pub mod parse_pool;
 pub mod sources;
 pub mod state;

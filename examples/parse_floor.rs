@@ -1,0 +1,122 @@
+//! The throughput floor of issue 9: reads a feed file and deserialises every line with
+//! serde_json into scrim's event representation ([`scrim::engine::event::Event`]) with
+//! scrim's own [`LineParser`] built from the demo configuration's schema, on one thread, and
+//! does nothing else. `scrim replay` on the same file can only be slower; the ratio of the
+//! two is the cost of everything after parsing.
+//!
+//! Run: `cargo run --release --example parse_floor -- FEED [--keyed-hash]`
+//!
+//! `LineParser::parse` needs a function that maps a raw unit id to a `u64`. By default the
+//! floor uses 64-bit FNV-1a (a few cycles per byte, not keyed), because the keyed BLAKE3
+//! hash scrim applies is privacy work, not deserialisation, and belongs to scrim's side of
+//! the ratio. `--keyed-hash` parses through [`scrim::engine::core::LineDecoder`] instead
+//! (scrim's keyed hash), which shows how much of scrim's time the unit hash takes.
+//!
+//! Output (stdout, one line): `lines=N ok=N rejected=N seconds=S lines_per_s=R`.
+
+use std::io::{BufRead, BufReader};
+use std::process::ExitCode;
+
+use scrim::config::Config;
+use scrim::engine::event::{Event, Rejection};
+use scrim::engine::noise::NoiseKey;
+use scrim::engine::{Engine, EngineOptions};
+
+/// 64-bit FNV-1a (Fowler, Noll, Vo; offset basis and prime from the published parameters).
+fn fnv1a64(bytes: &[u8]) -> u64 {
+    let mut h = 0xcbf2_9ce4_8422_2325u64;
+    for b in bytes {
+        h ^= u64::from(*b);
+        h = h.wrapping_mul(0x0000_0100_0000_01b3);
+    }
+    h
+}
+
+/// Folds an event into a checksum so the optimiser cannot drop the parse.
+fn fold(acc: u64, ev: &Event) -> u64 {
+    let mut acc = acc ^ ev.time.0 as u64 ^ ev.unit.unwrap_or(0);
+    for c in &ev.categories {
+        acc = acc.rotate_left(5) ^ u64::from(*c);
+    }
+    for x in &ev.numbers {
+        acc = acc.rotate_left(7) ^ x.to_bits();
+    }
+    acc
+}
+
+fn main() -> ExitCode {
+    let args: Vec<String> = std::env::args().skip(1).collect();
+    let keyed = args.iter().any(|a| a == "--keyed-hash");
+    let Some(path) = args.iter().find(|a| !a.starts_with("--")) else {
+        eprintln!("usage: parse_floor FEED [--keyed-hash]");
+        return ExitCode::from(2);
+    };
+    // The demo configuration is the one the benchmark replays; the engine builds the parser
+    // from it exactly as `scrim replay` does. Its noise key is irrelevant without --keyed-hash.
+    let engine = Config::from_toml_str(scrim::app::DEMO_CONFIG)
+        .map_err(|e| e.to_string())
+        .and_then(|c| {
+            Engine::new(&c, NoiseKey::from_seed(1), EngineOptions::default())
+                .map_err(|e| e.to_string())
+        });
+    let engine = match engine {
+        Ok(e) => e,
+        Err(msg) => {
+            eprintln!("parse_floor: demo configuration: {msg}");
+            return ExitCode::from(2);
+        }
+    };
+    let decoder = engine.line_decoder();
+    let file = match std::fs::File::open(path) {
+        Ok(f) => f,
+        Err(e) => {
+            eprintln!("parse_floor: opening {path}: {e}");
+            return ExitCode::from(1);
+        }
+    };
+    let started = std::time::Instant::now();
+    // The same reading loop as `scrim::app::pump` (1 MiB buffer, one reused line buffer).
+    let mut reader = BufReader::with_capacity(1 << 20, file);
+    let mut line = Vec::with_capacity(4096);
+    let (mut n_lines, mut n_ok, mut checksum) = (0u64, 0u64, 0u64);
+    loop {
+        line.clear();
+        match reader.read_until(b'\n', &mut line) {
+            Ok(0) => break,
+            Ok(_) => {}
+            Err(e) => {
+                eprintln!("parse_floor: reading {path}: {e}");
+                return ExitCode::from(1);
+            }
+        }
+        n_lines += 1;
+        let mut body: &[u8] = &line;
+        if let Some(b) = body.strip_suffix(b"\n") {
+            body = b;
+        }
+        if let Some(b) = body.strip_suffix(b"\r") {
+            body = b;
+        }
+        let parsed: Result<Event, Rejection> = if keyed {
+            decoder.decode(body)
+        } else {
+            decoder.parser().parse(body, &fnv1a64)
+        };
+        match parsed {
+            Ok(ev) => {
+                n_ok += 1;
+                checksum = fold(checksum, &ev);
+            }
+            Err(rej) => checksum ^= rej.reason.index() as u64,
+        }
+    }
+    let seconds = started.elapsed().as_secs_f64();
+    std::hint::black_box(checksum);
+    println!(
+        "lines={n_lines} ok={n_ok} rejected={} seconds={seconds:.3} lines_per_s={:.0} hash={}",
+        n_lines - n_ok,
+        n_lines as f64 / seconds,
+        if keyed { "keyed-blake3" } else { "fnv1a" }
+    );
+    ExitCode::SUCCESS
+}

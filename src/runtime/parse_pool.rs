@@ -1,0 +1,420 @@
+//! Parallel line parsing for `scrim replay`: lines are decoded on several threads and their
+//! verdicts handed to the (single-threaded) engine in input order, so the engine's output
+//! cannot depend on the number of threads.
+//!
+//! # Why this is deterministic
+//! Parsing a line ([`LineDecoder::decode`]) is a pure function of the line's bytes and the
+//! engine's key: it reads no state the engine changes. The input is cut into chunks of
+//! whole lines, numbered in reading order; each chunk's verdicts come back in line order
+//! and the caller consumes chunk `k` only after chunk `k - 1`. The engine therefore sees
+//! exactly the sequence `handle_parsed(decode(line))` that `handle_line(line)` would give,
+//! for any thread count and any scheduling.
+//!
+//! # Why the calling thread parses too
+//! With two cores, one dedicated parser thread plus the engine thread can go no faster than
+//! the parse alone (the floor). To beat it, the calling thread, whenever the next chunk in
+//! order is not ready, takes the oldest unparsed chunk itself, so both cores share the
+//! parse and the engine work between them.
+//!
+//! # Memory
+//! At most `2 · threads + 2` chunks of [`CHUNK_BYTES`] are in flight (read but not yet
+//! consumed), so memory does not grow with the input; buffers are recycled. A single line
+//! longer than a chunk grows its chunk until its newline, as `BufRead::read_until` would.
+
+use std::collections::{BTreeMap, VecDeque};
+use std::io::{self, Read};
+use std::sync::{Condvar, Mutex, MutexGuard, PoisonError};
+
+use crate::engine::core::LineDecoder;
+use crate::engine::event::{Event, Rejection};
+
+/// Target size of one chunk of input. About 1,700 demo lines: large enough that the two lock
+/// operations per chunk cost nothing next to parsing it, small enough that the in-flight
+/// chunks stay far below a megabyte per thread and keep every thread busy at the end.
+pub const CHUNK_BYTES: usize = 256 * 1024;
+
+/// The parser's verdict on one line.
+type Verdict = Result<Event, Rejection>;
+
+/// Whole lines read from the input, with the position of the chunk in reading order.
+struct Job {
+    seq: u64,
+    bytes: Vec<u8>,
+    /// An empty vector to fill (recycled from an earlier chunk).
+    verdicts: Vec<Verdict>,
+}
+
+/// What the threads share.
+struct Queue {
+    /// Chunks read but not yet taken by any thread, oldest first.
+    todo: VecDeque<Job>,
+    /// Parsed chunks waiting for their turn, by `seq`.
+    done: BTreeMap<u64, Job>,
+    /// No more jobs will come: workers exit once `todo` is empty.
+    closed: bool,
+    /// A worker panicked; the chunk it held is lost, so the caller must not wait for it.
+    worker_lost: bool,
+}
+
+struct Shared {
+    queue: Mutex<Queue>,
+    /// Signalled when a job is queued or the queue closes (workers wait on it).
+    work: Condvar,
+    /// Signalled when a chunk is parsed or a worker is lost (the caller waits on it).
+    progress: Condvar,
+}
+
+impl Shared {
+    /// Locks the queue. A poisoned lock only means another thread panicked while holding
+    /// it; every critical section leaves the queue consistent between single operations,
+    /// and a lost worker is reported through `worker_lost`, so the data is still usable.
+    fn lock(&self) -> MutexGuard<'_, Queue> {
+        self.queue.lock().unwrap_or_else(PoisonError::into_inner)
+    }
+}
+
+/// Closes the queue when the caller leaves (normally, by `?`, or by a panic), so that the
+/// workers exit and `std::thread::scope` can join them instead of waiting forever.
+struct CloseOnDrop<'a>(&'a Shared);
+
+impl Drop for CloseOnDrop<'_> {
+    fn drop(&mut self) {
+        self.0.lock().closed = true;
+        self.0.work.notify_all();
+    }
+}
+
+/// Marks the queue when a worker unwinds, so the caller stops waiting for its chunk.
+struct ReportLoss<'a>(&'a Shared);
+
+impl Drop for ReportLoss<'_> {
+    fn drop(&mut self) {
+        if std::thread::panicking() {
+            self.0.lock().worker_lost = true;
+            self.0.progress.notify_all();
+        }
+    }
+}
+
+/// Cuts the input into chunks that end on a line boundary (or at the end of the input).
+struct ChunkReader<R> {
+    input: R,
+    /// The incomplete last line of the previous read, carried into the next chunk.
+    carry: Vec<u8>,
+    eof: bool,
+}
+
+impl<R: Read> ChunkReader<R> {
+    /// Fills `buf` (cleared first) with the next chunk of whole lines; `None` at the end.
+    fn next_chunk(&mut self, mut buf: Vec<u8>) -> io::Result<Option<Vec<u8>>> {
+        buf.clear();
+        buf.append(&mut self.carry);
+        let mut scanned = 0;
+        loop {
+            if self.eof {
+                return Ok((!buf.is_empty()).then_some(buf));
+            }
+            if buf.len() >= CHUNK_BYTES {
+                // Cut after the last newline; bytes already scanned hold none.
+                if let Some(pos) = buf[scanned..].iter().rposition(|b| *b == b'\n') {
+                    let cut = scanned + pos + 1;
+                    self.carry.extend_from_slice(&buf[cut..]);
+                    buf.truncate(cut);
+                    return Ok(Some(buf));
+                }
+                // One line longer than the chunk: keep reading until it ends.
+                scanned = buf.len();
+            }
+            let filled = buf.len();
+            // Up to a full chunk; past it (a long line) grow geometrically.
+            let want = if filled < CHUNK_BYTES {
+                CHUNK_BYTES - filled
+            } else {
+                filled / 2
+            };
+            buf.resize(filled + want, 0);
+            match self.input.read(&mut buf[filled..]) {
+                Ok(n) => {
+                    buf.truncate(filled + n);
+                    self.eof = n == 0;
+                }
+                Err(e) if e.kind() == io::ErrorKind::Interrupted => buf.truncate(filled),
+                Err(e) => return Err(e),
+            }
+        }
+    }
+}
+
+/// Decodes every line of `job.bytes` into `job.verdicts`, with the line rules of
+/// [`crate::app::pump`]: a line ends at `\n` (the last one may lack it) and one trailing
+/// `\r` is removed.
+fn decode_job(decoder: &LineDecoder, job: &mut Job) {
+    let bytes: &[u8] = &job.bytes;
+    // A chunk is never empty; when it ends with '\n' that newline closes the last line
+    // instead of starting an empty one.
+    let body = bytes.strip_suffix(b"\n").unwrap_or(bytes);
+    for line in body.split(|b| *b == b'\n') {
+        let line = line.strip_suffix(b"\r").unwrap_or(line);
+        job.verdicts.push(decoder.decode(line));
+    }
+}
+
+fn worker(shared: &Shared, decoder: &LineDecoder) {
+    let _loss = ReportLoss(shared);
+    loop {
+        let mut job = {
+            let mut q = shared.lock();
+            loop {
+                if let Some(job) = q.todo.pop_front() {
+                    break job;
+                }
+                if q.closed {
+                    return;
+                }
+                q = shared.work.wait(q).unwrap_or_else(PoisonError::into_inner);
+            }
+        };
+        decode_job(decoder, &mut job);
+        shared.lock().done.insert(job.seq, job);
+        shared.progress.notify_one();
+    }
+}
+
+/// Reads every line of `input`, decodes the lines on `threads` threads (the calling thread
+/// included; `threads <= 1` decodes on the calling thread alone) and calls `consume` with
+/// each line's verdict in input order. Returns the number of lines.
+///
+/// Stops at the first error of `input` or `consume` and returns it; lines after it are not
+/// consumed. Equivalent to calling `consume(decoder.decode(line))` for every line that
+/// `BufRead::read_until(b'\n')` would yield, with a trailing `\n` and then `\r` removed.
+pub fn decode_in_order<R: Read>(
+    input: R,
+    decoder: &LineDecoder,
+    threads: usize,
+    mut consume: impl FnMut(Verdict) -> io::Result<()>,
+) -> io::Result<u64> {
+    let shared = Shared {
+        queue: Mutex::new(Queue {
+            todo: VecDeque::new(),
+            done: BTreeMap::new(),
+            closed: false,
+            worker_lost: false,
+        }),
+        work: Condvar::new(),
+        progress: Condvar::new(),
+    };
+    let n_workers = threads.saturating_sub(1);
+    let max_in_flight = 2 * threads.max(1) as u64 + 2;
+    std::thread::scope(|scope| {
+        for _ in 0..n_workers {
+            scope.spawn(|| worker(&shared, decoder));
+        }
+        let _close = CloseOnDrop(&shared);
+        let mut reader = ChunkReader {
+            input,
+            carry: Vec::new(),
+            eof: false,
+        };
+        let mut spare: Vec<(Vec<u8>, Vec<Verdict>)> = Vec::new();
+        let (mut next_read, mut next_consume, mut n_lines) = (0u64, 0u64, 0u64);
+        let mut input_done = false;
+        loop {
+            // Keep the pipeline full: read ahead up to the in-flight limit.
+            while !input_done && next_read - next_consume < max_in_flight {
+                let (bytes, verdicts) = spare.pop().unwrap_or_default();
+                match reader.next_chunk(bytes)? {
+                    None => input_done = true,
+                    Some(bytes) => {
+                        shared.lock().todo.push_back(Job {
+                            seq: next_read,
+                            bytes,
+                            verdicts,
+                        });
+                        shared.work.notify_one();
+                        next_read += 1;
+                    }
+                }
+            }
+            if next_consume == next_read {
+                return Ok(n_lines);
+            }
+            // The next chunk in order: already parsed, or parse the oldest waiting chunk
+            // ourselves, or wait for a worker.
+            let mut job = {
+                let mut q = shared.lock();
+                loop {
+                    if let Some(job) = q.done.remove(&next_consume) {
+                        break job;
+                    }
+                    if let Some(mut job) = q.todo.pop_front() {
+                        drop(q);
+                        decode_job(decoder, &mut job);
+                        if job.seq == next_consume {
+                            break job;
+                        }
+                        q = shared.lock();
+                        q.done.insert(job.seq, job);
+                        continue;
+                    }
+                    if q.worker_lost {
+                        return Err(io::Error::other("a parse worker thread panicked"));
+                    }
+                    q = shared
+                        .progress
+                        .wait(q)
+                        .unwrap_or_else(PoisonError::into_inner);
+                }
+            };
+            for verdict in job.verdicts.drain(..) {
+                n_lines += 1;
+                consume(verdict)?;
+            }
+            next_consume += 1;
+            spare.push((job.bytes, job.verdicts));
+        }
+    })
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use crate::config::Config;
+    use crate::engine::noise::NoiseKey;
+    use crate::engine::{Engine, EngineOptions};
+    use std::io::BufRead;
+
+    fn decoder() -> LineDecoder {
+        let config =
+            Config::from_toml_str(crate::app::DEMO_CONFIG).expect("the demo config is valid");
+        Engine::new(&config, NoiseKey::from_seed(7), EngineOptions::default())
+            .expect("engine")
+            .line_decoder()
+    }
+
+    /// The reference: `BufRead::read_until` line by line, as `app::pump` reads (std is the
+    /// reference implementation of the line rules).
+    fn sequential(input: &[u8], decoder: &LineDecoder) -> Vec<Verdict> {
+        let mut reader = io::BufReader::new(input);
+        let mut line = Vec::new();
+        let mut out = Vec::new();
+        loop {
+            line.clear();
+            if reader.read_until(b'\n', &mut line).expect("in memory") == 0 {
+                return out;
+            }
+            let body = line.strip_suffix(b"\n").unwrap_or(&line);
+            let body = body.strip_suffix(b"\r").unwrap_or(body);
+            out.push(decoder.decode(body));
+        }
+    }
+
+    /// A reader that hands out at most `step` bytes per call, as a pipe would.
+    struct Trickle<'a> {
+        data: &'a [u8],
+        step: usize,
+    }
+
+    impl Read for Trickle<'_> {
+        fn read(&mut self, buf: &mut [u8]) -> io::Result<usize> {
+            let n = self.step.min(buf.len()).min(self.data.len());
+            buf[..n].copy_from_slice(&self.data[..n]);
+            self.data = &self.data[n..];
+            Ok(n)
+        }
+    }
+
+    fn parallel(input: &[u8], decoder: &LineDecoder, threads: usize, step: usize) -> Vec<Verdict> {
+        let mut out = Vec::new();
+        let n = decode_in_order(Trickle { data: input, step }, decoder, threads, |v| {
+            out.push(v);
+            Ok(())
+        })
+        .expect("in memory");
+        assert_eq!(n as usize, out.len());
+        out
+    }
+
+    /// A few chunks of demo lines with dirt, CRLF endings, blank lines, a line longer than
+    /// a chunk and no final newline.
+    fn mixed_input() -> Vec<u8> {
+        let spec = crate::demo::FeedSpec {
+            n_cards: 5000,
+            days: 1,
+            ..Default::default()
+        };
+        let mut input = Vec::new();
+        for (i, line) in crate::demo::DemoFeed::new(&spec).take(8000).enumerate() {
+            input.extend_from_slice(&line);
+            input.extend_from_slice(if i % 7 == 0 { b"\r\n" } else { b"\n" });
+            if i == 3000 {
+                input.extend_from_slice(b"\n\r\n");
+                input.extend_from_slice(&vec![b' '; CHUNK_BYTES + 10]);
+                input.push(b'\n');
+            }
+        }
+        input.extend_from_slice(b"{\"ts\":1}");
+        input
+    }
+
+    #[test]
+    fn verdicts_match_read_until_for_any_thread_count_and_read_size() {
+        let decoder = decoder();
+        let input = mixed_input();
+        assert!(
+            input.len() > 3 * CHUNK_BYTES,
+            "the input must span several chunks"
+        );
+        let expected = sequential(&input, &decoder);
+        assert!(expected.iter().any(Result::is_err) && expected.iter().any(Result::is_ok));
+        for threads in [1, 2, 3] {
+            for step in [usize::MAX, 4093] {
+                assert_eq!(
+                    parallel(&input, &decoder, threads, step),
+                    expected,
+                    "threads {threads}, read size {step}"
+                );
+            }
+        }
+    }
+
+    #[test]
+    fn edge_inputs_match_read_until() {
+        let decoder = decoder();
+        for input in [
+            &b""[..],
+            b"\n",
+            b"\n\n",
+            b"\r\n",
+            b"x",
+            b"x\n",
+            b"\r",
+            b"a\r\r\n",
+        ] {
+            assert_eq!(
+                parallel(input, &decoder, 2, 1),
+                sequential(input, &decoder),
+                "{input:?}"
+            );
+        }
+    }
+
+    #[test]
+    fn a_consumer_error_stops_the_pool_and_is_returned() {
+        let decoder = decoder();
+        let input = mixed_input();
+        let mut seen = 0;
+        let result = decode_in_order(&input[..], &decoder, 2, |_| {
+            seen += 1;
+            if seen == 2500 {
+                Err(io::Error::other("sink full"))
+            } else {
+                Ok(())
+            }
+        });
+        assert_eq!(
+            result.map_err(|e| e.to_string()).expect_err("stops"),
+            "sink full"
+        );
+        assert_eq!(seen, 2500);
+    }
+}
