@@ -460,6 +460,9 @@ fn runbook_anchors() -> BTreeSet<String> {
         .collect()
 }
 
+/// Against the ops task's list of alerts and Prometheus' alerting-rule fields: every alert
+/// exists, has `for`, a severity, summary, description and a `runbook_url` whose anchor is a
+/// heading of RUNBOOK.md (GitHub's anchor rule); the runbook's own links resolve.
 #[test]
 fn every_required_alert_is_defined_documented_and_linked_to_its_runbook_section() {
     // The alert set the ops task asks for, plus ScrimDown (without it, every other alert goes
@@ -529,6 +532,8 @@ fn every_required_alert_is_defined_documented_and_linked_to_its_runbook_section(
     }
 }
 
+/// Coverage of ops/alerts.test.yml: each alert appears once with expected alerts (fires)
+/// and once with `exp_alerts: []` (must not fire), as the ops task requires.
 #[test]
 fn every_alert_has_a_firing_and_a_quiet_unit_test() {
     let mut firing = BTreeSet::new();
@@ -561,6 +566,7 @@ fn every_alert_has_a_firing_and_a_quiet_unit_test() {
     }
 }
 
+/// promtool (Prometheus' own checker) accepts the rules and passes their unit tests.
 #[test]
 fn alert_rules_pass_promtool_check_and_unit_tests() {
     let Some(promtool) = tool("promtool") else {
@@ -695,6 +701,8 @@ fn expr_metric_names(expr: &str) -> BTreeSet<String> {
     names
 }
 
+/// The helper that lists metric names in PromQL, on an expression with every construct the
+/// rules use (aggregation with `by`, `on`, label matchers, ranges, numbers, recorded names).
 #[test]
 fn the_metric_name_extractor_reads_promql() {
     // Checked by hand against the PromQL grammar (prometheus.io/docs/prometheus/latest/querying).
@@ -717,6 +725,8 @@ fn feed_config(dir: &Path, body: &str) -> String {
     )
 }
 
+/// Against a running `scrim run`: every metric the rules read is in its `/metrics`, and
+/// `promtool check metrics` (the exposition-format and naming lint) accepts the page.
 #[test]
 fn live_metrics_pass_promtool_and_hold_every_metric_the_alerts_use() {
     let dir = tempfile::tempdir().unwrap();
@@ -828,6 +838,8 @@ zone = ["harbour", "uplands"]
 
 // ---- systemd unit ----------------------------------------------------------------------
 
+/// Against the ops task's directive list, then systemd itself: `systemd-analyze verify`
+/// parses the unit without unknown keys, and `systemd-analyze security` rates its sandbox.
 #[test]
 fn systemd_unit_has_the_required_hardening_and_verifies() {
     let directives: BTreeMap<&str, Vec<&str>> = UNIT
@@ -924,6 +936,7 @@ fn systemd_unit_has_the_required_hardening_and_verifies() {
 
 // ---- dashboard: fixtures -----------------------------------------------------------------
 
+/// The page's band multiplier is Φ⁻¹(0.975), checked against statrs' normal quantile.
 #[test]
 fn dashboard_band_quantile_matches_statrs() {
     use statrs::distribution::{ContinuousCDF, Normal};
@@ -936,6 +949,8 @@ fn dashboard_band_quantile_matches_statrs() {
     );
 }
 
+/// The page loads nothing from outside (no CDN, fonts or remote scripts) and builds its DOM
+/// without innerHTML, so release fields can never inject markup.
 #[test]
 fn dashboard_is_self_contained() {
     // No CDN, no remote fonts or scripts: the only URL is the SVG namespace.
@@ -1081,7 +1096,8 @@ fn fixture_releases(seeded_leaf: Option<i64>) -> Vec<Value> {
             json!({"stat": "trip_minutes_mean", "kind": "mean", "scope": "window", "group": {},
                     "window_start": start, "window_end": end,
                     "value": if undefined { Value::Null } else { json!(14.0 + (h as f64 / 5.0).cos()) },
-                    "std_error": if undefined { Value::Null } else { json!(0.8) },
+                    // Window 40 had few rows: a band 50 times the usual width.
+                    "std_error": if undefined { Value::Null } else if h == 40 { json!(40.0) } else { json!(0.8) },
                     "note": if undefined { "noisy count below 1: the mean is undefined for this scope" } else { "std_error by the delta method (first order)" },
                     "epoch": 0, "leaf": h, "seeded": false}),
         );
@@ -1200,6 +1216,10 @@ fn assert_healthy_page(html: &str, all: &[Tag]) {
     );
 }
 
+/// The page in headless Chromium against a fixture API with known answers: the cursor
+/// protocol of contract.md, the gauge geometry, the budget projection (engine charging rule),
+/// counts, the seeded banner, one panel per statistic, bands of ±1.96·std_error, gaps for
+/// undefined values, linear coefficients, clipped outlier bands and the grid layout.
 #[test]
 fn dashboard_renders_the_unit_level_fixture_with_paging_bands_gaps_and_budget() {
     let Some(chromium) = tool("chromium") else {
@@ -1386,6 +1406,51 @@ fn dashboard_renders_the_unit_level_fixture_with_paging_bands_gaps_and_budget() 
         .find(|t| t.name == "path" && t.has_class("band"))
         .unwrap();
     assert_eq!(subpaths(band.attr("d").unwrap()), 3);
+    // Window 40's band (±1.96·40 = ±78) is 50 times the median band (±1.96·0.8). The y range
+    // must hold every value and every band cut at BAND_CAP = 4 median bands (the page's rule),
+    // so that one band is clipped at the plot edge instead of stretching the range.
+    let svg = inner
+        .iter()
+        .find(|t| t.name == "svg" && t.has_class("chart-svg"))
+        .unwrap();
+    assert_eq!(svg.attr("data-bands-clipped"), Some("1"));
+    let (y_min, y_max): (f64, f64) = (
+        svg.attr("data-y-min").unwrap().parse().unwrap(),
+        svg.attr("data-y-max").unwrap().parse().unwrap(),
+    );
+    let points: Vec<(f64, f64)> = releases
+        .iter()
+        .filter(|r| r["stat"] == "trip_minutes_mean" && r["value"].is_number())
+        .map(|r| {
+            (
+                r["value"].as_f64().unwrap(),
+                Z95 * r["std_error"].as_f64().unwrap(),
+            )
+        })
+        .collect();
+    let mut halves: Vec<f64> = points.iter().map(|p| p.1).collect();
+    halves.sort_by(f64::total_cmp);
+    let cap = 4.0 * halves[halves.len() / 2];
+    let lo = points
+        .iter()
+        .map(|(v, h)| v - h.min(cap))
+        .fold(f64::INFINITY, f64::min);
+    let hi = points
+        .iter()
+        .map(|(v, h)| v + h.min(cap))
+        .fold(f64::NEG_INFINITY, f64::max);
+    assert!(
+        y_min <= lo && hi <= y_max,
+        "[{y_min}, {y_max}] must hold [{lo}, {hi}]"
+    );
+    assert!(
+        y_max - y_min < 40.0,
+        "one wide band stretched the range to [{y_min}, {y_max}]"
+    );
+    assert!(
+        band.attr("clip-path")
+            .is_some_and(|c| c.starts_with("url(#plot-clip-"))
+    );
 
     // Every chart is drawn for the laid-out grid: the count chart (first panel drawn) is as
     // wide as the mean chart in the other column, and both fit in half the window.
@@ -1424,6 +1489,8 @@ fn dashboard_renders_the_unit_level_fixture_with_paging_bands_gaps_and_budget() 
     assert!(lines.iter().all(|l| l.attr("data-runs") == Some("2")));
 }
 
+/// The budget states the page must tell apart: exhausted (red banner with the reason),
+/// event level (no lifetime cap) and a stream that has not started (nothing charged yet).
 #[test]
 fn dashboard_shows_exhaustion_event_level_and_fresh_budgets() {
     let Some(chromium) = tool("chromium") else {
@@ -1578,6 +1645,9 @@ fn demo_stats_and_privacy() -> String {
     out
 }
 
+/// End to end: `scrim demo --seed 1 --days 2` makes the feed, `scrim run` reads it from a
+/// file source, and the page in Chromium shows what the daemon's own API reports (records,
+/// counts, budget level, seeded flag, a line per statistic). Leaves target/dashboard.png.
 #[test]
 fn dashboard_renders_a_live_daemon_fed_the_demo_feed() {
     let Some(chromium) = tool("chromium") else {
