@@ -17,8 +17,9 @@
 //! parse and the engine work between them.
 //!
 //! # Memory
-//! At most `2 · threads + 2` chunks of [`CHUNK_BYTES`] are in flight (read but not yet
-//! consumed), so memory does not grow with the input; buffers are recycled. A single line
+//! At most [`CHUNKS_IN_FLIGHT_PER_THREAD`] × `threads` chunks of [`CHUNK_BYTES`] are in
+//! flight (read but not yet consumed), so memory does not grow with the input (about 2 MiB
+//! per thread with their verdicts); buffers are recycled. A single line
 //! longer than a chunk grows its chunk until its newline, as `BufRead::read_until` would.
 
 use std::collections::{BTreeMap, VecDeque};
@@ -28,10 +29,15 @@ use std::sync::{Condvar, Mutex, MutexGuard, PoisonError};
 use crate::engine::core::LineDecoder;
 use crate::engine::event::{Event, Rejection};
 
-/// Target size of one chunk of input. About 1,700 demo lines: large enough that the two lock
-/// operations per chunk cost nothing next to parsing it, small enough that the in-flight
-/// chunks stay far below a megabyte per thread and keep every thread busy at the end.
-pub const CHUNK_BYTES: usize = 256 * 1024;
+/// Target size of one chunk of input: about 450 demo lines, a millisecond of parsing. The
+/// few lock operations per chunk cost nothing next to that, and a chunk held by a thread
+/// the OS has descheduled is small enough that the others are not starved for long.
+pub const CHUNK_BYTES: usize = 64 * 1024;
+
+/// Read-ahead per thread, in chunks. The window lets the calling thread parse far ahead
+/// when a worker holding the next chunk is descheduled (on a loaded machine), instead of
+/// waiting for it; 16 chunks are about 1 MiB of input.
+pub const CHUNKS_IN_FLIGHT_PER_THREAD: u64 = 16;
 
 /// The parser's verdict on one line.
 type Verdict = Result<Event, Rejection>;
@@ -204,7 +210,7 @@ pub fn decode_in_order<R: Read>(
         progress: Condvar::new(),
     };
     let n_workers = threads.saturating_sub(1);
-    let max_in_flight = 2 * threads.max(1) as u64 + 2;
+    let max_in_flight = CHUNKS_IN_FLIGHT_PER_THREAD * threads.max(1) as u64;
     std::thread::scope(|scope| {
         for _ in 0..n_workers {
             scope.spawn(|| worker(&shared, decoder));
