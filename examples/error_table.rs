@@ -11,25 +11,20 @@
 
 use scrim::engine::mechanism::{self, LeafRange, MechanismKind};
 
-/// Nodes of the plain binary mechanism used for the range [a, b] at time b: the prefix
-/// decompositions of b+1 and a (nodes shared by both cancel), as in privacy-math §4.
+/// Nodes of the plain binary mechanism used for the range [a, b]: its minimal dyadic cover
+/// (greedy: the largest aligned block starting at a that fits, repeatedly; privacy-math §4).
 fn plain_nodes(a: u32, b: u32) -> u32 {
-    let prefix = |t: u32| -> Vec<(u32, u32)> {
-        // Dyadic blocks of [0, t): one per set bit of t, largest first.
-        let mut out = Vec::new();
-        let mut start = 0;
-        for l in (0..32).rev() {
-            if t >> l & 1 == 1 {
-                out.push((l, start >> l));
-                start += 1 << l;
-            }
+    let (mut a, mut n) = (u64::from(a), 0);
+    let end = u64::from(b) + 1;
+    while a < end {
+        let mut size = 1u64;
+        while a % (size * 2) == 0 && a + size * 2 <= end {
+            size *= 2;
         }
-        out
-    };
-    let pb = prefix(b + 1);
-    let pa = prefix(a);
-    let sym = pb.iter().filter(|n| !pa.contains(n)).count() + pa.iter().filter(|n| !pb.contains(n)).count();
-    sym as u32
+        a += size;
+        n += 1;
+    }
+    n
 }
 
 /// Node variance that makes one epoch cost ρ when Δ = 1, in units of 1/(2ρ): σ² = Δ₂²/(2ρ).
@@ -41,15 +36,33 @@ fn unit_node_var(k: MechanismKind, horizon: u32) -> f64 {
 }
 
 fn main() {
-    println!("std_error at the end of an epoch, in units of Δ/√(2ρ) (event level, one unit per window)");
+    println!(
+        "std_error at the end of an epoch, in units of Δ/√(2ρ) (event level, one unit per window)"
+    );
     println!("ratio = std_error / plain binary mechanism (no optimal estimator)\n");
-    let kinds = [MechanismKind::Tree, MechanismKind::SqrtFactorization, MechanismKind::Independent];
+    let kinds = [
+        MechanismKind::Tree,
+        MechanismKind::SqrtFactorization,
+        MechanismKind::Independent,
+    ];
     for horizon in [720u32, 8760] {
         let t = horizon - 1;
         let scopes: [(&str, LeafRange); 4] = [
             ("window", LeafRange { first: t, last: t }),
-            ("trailing:24", LeafRange { first: t - 23, last: t }),
-            ("trailing:168", LeafRange { first: t - 167, last: t }),
+            (
+                "trailing:24",
+                LeafRange {
+                    first: t - 23,
+                    last: t,
+                },
+            ),
+            (
+                "trailing:168",
+                LeafRange {
+                    first: t - 167,
+                    last: t,
+                },
+            ),
             ("epoch_to_date", LeafRange { first: 0, last: t }),
         ];
         println!("T = {horizon} (h = {} levels)", mechanism::levels(horizon));
@@ -78,7 +91,15 @@ fn main() {
         for k in kinds {
             let node_var = unit_node_var(k, horizon);
             let worst = (0..horizon)
-                .map(|t| mechanism::estimate_variance(k, horizon, node_var, t + 1, LeafRange { first: 0, last: t }))
+                .map(|t| {
+                    mechanism::estimate_variance(
+                        k,
+                        horizon,
+                        node_var,
+                        t + 1,
+                        LeafRange { first: 0, last: t },
+                    )
+                })
                 .fold(0.0f64, f64::max)
                 .sqrt();
             print!(" {} {worst:.4};", k.as_str());

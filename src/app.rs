@@ -83,7 +83,10 @@ pub enum KeySource {
 impl KeySource {
     fn key(self) -> Result<(NoiseKey, bool), AppError> {
         match self {
-            KeySource::Os => Ok((crate::runtime::os_noise_key().map_err(io("reading OS entropy"))?, false)),
+            KeySource::Os => Ok((
+                crate::runtime::os_noise_key().map_err(io("reading OS entropy"))?,
+                false,
+            )),
             KeySource::Seed(s) => Ok((NoiseKey::from_seed(s), true)),
         }
     }
@@ -207,11 +210,21 @@ pub fn replay(
     threads: usize,
 ) -> Result<ReplaySummary, AppError> {
     let config = Config::load(config_path)?;
-    let out_dir = out.map(Path::to_path_buf).unwrap_or_else(|| config.output.dir.clone());
+    let out_dir = out
+        .map(Path::to_path_buf)
+        .unwrap_or_else(|| config.output.dir.clone());
     let Some(state_dir) = state else {
         let (key, seeded) = key.key()?;
-        let mut engine = Engine::new(&config, key, EngineOptions { seeded, danger_keep_truth: false })?;
-        let mut sink = JsonlSink::create(&out_dir).map_err(io(format!("creating {}", out_dir.display())))?;
+        let mut engine = Engine::new(
+            &config,
+            key,
+            EngineOptions {
+                seeded,
+                danger_keep_truth: false,
+            },
+        )?;
+        let mut sink =
+            JsonlSink::create(&out_dir).map_err(io(format!("creating {}", out_dir.display())))?;
         let (lines, releases) = if input == "-" {
             pump(&mut engine, std::io::stdin().lock(), &mut sink, threads)
         } else {
@@ -230,7 +243,8 @@ pub fn replay(
     };
     if input == "-" {
         return Err(AppError::Usage(
-            "replay --state needs a file INPUT (stdin cannot be re-read after a restart)".to_string(),
+            "replay --state needs a file INPUT (stdin cannot be re-read after a restart)"
+                .to_string(),
         ));
     }
     replay_with_state(&config, &out_dir, state_dir, key, Path::new(input))
@@ -248,11 +262,20 @@ fn replay_with_state(
         KeySource::Seed(s) => Some(s),
         KeySource::Os => None,
     };
-    let (mut st, key, records) =
-        StateDir::open(state_dir, &config.fingerprint(), seed).map_err(|e| AppError::State(e.to_string()))?;
-    let mut engine = Engine::new(config, key, EngineOptions { seeded: seed.is_some(), danger_keep_truth: false })?;
+    let (mut st, key, records) = StateDir::open(state_dir, &config.fingerprint(), seed)
+        .map_err(|e| AppError::State(e.to_string()))?;
+    let mut engine = Engine::new(
+        config,
+        key,
+        EngineOptions {
+            seeded: seed.is_some(),
+            danger_keep_truth: false,
+        },
+    )?;
     // Lines logged after the last offset record are re-read from the input instead.
-    let last_offset_at = records.iter().rposition(|r| matches!(r, WalRecord::Offset { .. }));
+    let last_offset_at = records
+        .iter()
+        .rposition(|r| matches!(r, WalRecord::Offset { .. }));
     let mut offset = 0u64;
     let mut finished = false;
     for (i, r) in records.iter().enumerate() {
@@ -279,7 +302,8 @@ fn replay_with_state(
     std::fs::create_dir_all(out_dir).map_err(io(format!("creating {}", out_dir.display())))?;
     let rel_path = out_dir.join("releases.jsonl");
     let published = state::published_seq(&rel_path).map_err(|e| AppError::State(e.to_string()))?;
-    let mut sink = JsonlSink::open(out_dir).map_err(io(format!("opening {}", rel_path.display())))?;
+    let mut sink =
+        JsonlSink::open(out_dir).map_err(io(format!("opening {}", rel_path.display())))?;
     let mut regenerated = 0u64;
     let mut n_releases = 0u64;
     while let Some(r) = engine.poll_release() {
@@ -289,27 +313,34 @@ fn replay_with_state(
             n_releases += 1;
         }
     }
-    if let Some(p) = published {
-        if regenerated == 0 || p >= regenerated {
-            return Err(AppError::State(format!(
-                "{} holds releases up to seq {p} but the state in {} only reproduces {regenerated}: the state is truncated or older than the output; restore both from the same backup",
-                rel_path.display(),
-                state_dir.display()
-            )));
-        }
+    if let Some(p) = published
+        && (regenerated == 0 || p >= regenerated)
+    {
+        return Err(AppError::State(format!(
+            "{} holds releases up to seq {p} but the state in {} only reproduces {regenerated}: the state is truncated or older than the output; restore both from the same backup",
+            rel_path.display(),
+            state_dir.display()
+        )));
     }
     sink.flush().map_err(io("writing releases"))?;
     let mut lines = 0u64;
     if !finished {
         use std::io::Seek;
-        let mut f = std::fs::File::open(input).map_err(io(format!("opening input {}", input.display())))?;
-        f.seek(std::io::SeekFrom::Start(offset)).map_err(io(format!("seeking input {}", input.display())))?;
+        let mut f =
+            std::fs::File::open(input).map_err(io(format!("opening input {}", input.display())))?;
+        f.seek(std::io::SeekFrom::Start(offset))
+            .map_err(io(format!("seeking input {}", input.display())))?;
         let mut reader = BufReader::with_capacity(1 << 20, f);
         let mut line = Vec::with_capacity(4096);
-        let wal_err = |e: std::io::Error| AppError::Io { context: format!("writing state in {}", state_dir.display()), source: e };
+        let wal_err = |e: std::io::Error| AppError::Io {
+            context: format!("writing state in {}", state_dir.display()),
+            source: e,
+        };
         loop {
             line.clear();
-            let n = reader.read_until(b'\n', &mut line).map_err(io(format!("reading {}", input.display())))?;
+            let n = reader
+                .read_until(b'\n', &mut line)
+                .map_err(io(format!("reading {}", input.display())))?;
             if n == 0 {
                 break;
             }
@@ -328,7 +359,7 @@ fn replay_with_state(
             while let Some(r) = engine.poll_release() {
                 fresh.push(r);
             }
-            if !fresh.is_empty() || lines % 4096 == 0 {
+            if !fresh.is_empty() || lines.is_multiple_of(4096) {
                 st.log_offset(0, offset).map_err(wal_err)?;
             }
             if !fresh.is_empty() {
@@ -393,8 +424,15 @@ fn scope_errors(plan: &Plan, stat_idx: usize) -> Vec<(String, Vec<f64>)> {
 pub fn plan_report(config: &Config, json: bool) -> Result<(String, bool), AppError> {
     let plan = plan_for(config, None)?;
     let fits = plan.epochs_allowed().is_none_or(|n| n >= 1);
-    let kinds = [Mechanism::Tree, Mechanism::SqrtFactorization, Mechanism::Independent];
-    let alt: Vec<Plan> = kinds.iter().map(|m| plan_for(config, Some(*m))).collect::<Result<_, _>>()?;
+    let kinds = [
+        Mechanism::Tree,
+        Mechanism::SqrtFactorization,
+        Mechanism::Independent,
+    ];
+    let alt: Vec<Plan> = kinds
+        .iter()
+        .map(|m| plan_for(config, Some(*m)))
+        .collect::<Result<_, _>>()?;
     if json {
         let stats: Vec<serde_json::Value> = plan
             .stats
@@ -421,7 +459,10 @@ pub fn plan_report(config: &Config, json: bool) -> Result<(String, bool), AppErr
                             .into_iter()
                             .map(|(label, e)| (label, serde_json::json!(e)))
                             .collect();
-                        (p.mechanism.as_str().to_string(), serde_json::Value::Object(errs))
+                        (
+                            p.mechanism.as_str().to_string(),
+                            serde_json::Value::Object(errs),
+                        )
                     })
                     .collect();
                 serde_json::json!({
@@ -433,7 +474,11 @@ pub fn plan_report(config: &Config, json: bool) -> Result<(String, bool), AppErr
             .collect();
         let (unit, lifetime) = match &plan.level {
             PrivacyLevel::Event => (serde_json::Value::Null, serde_json::Value::Null),
-            PrivacyLevel::Unit { field, lifetime_rho, .. } => (serde_json::json!(field), serde_json::json!(lifetime_rho)),
+            PrivacyLevel::Unit {
+                field,
+                lifetime_rho,
+                ..
+            } => (serde_json::json!(field), serde_json::json!(lifetime_rho)),
         };
         let v = serde_json::json!({
             "mechanism": plan.mechanism.as_str(),
@@ -448,12 +493,20 @@ pub fn plan_report(config: &Config, json: bool) -> Result<(String, bool), AppErr
             "fits": fits,
             "stats": stats,
         });
-        return Ok((serde_json::to_string_pretty(&v).unwrap_or_default() + "\n", fits));
+        return Ok((
+            serde_json::to_string_pretty(&v).unwrap_or_default() + "\n",
+            fits,
+        ));
     }
     let mut out = String::new();
     let level = match &plan.level {
         PrivacyLevel::Event => "event level (neighbours differ in one event)".to_string(),
-        PrivacyLevel::Unit { field, max_events_per_window, max_windows_per_epoch, .. } => format!(
+        PrivacyLevel::Unit {
+            field,
+            max_events_per_window,
+            max_windows_per_epoch,
+            ..
+        } => format!(
             "unit level on `{field}` (≤ {max_events_per_window} events per window, ≤ {max_windows_per_epoch} windows per epoch)"
         ),
     };
@@ -467,13 +520,21 @@ pub fn plan_report(config: &Config, json: bool) -> Result<(String, bool), AppErr
     );
     match (&plan.level, plan.epochs_allowed()) {
         (PrivacyLevel::Unit { lifetime_rho, .. }, Some(n)) => {
-            out += &format!("lifetime       rho {lifetime_rho} covers {n} epoch(s); releases stop after that\n")
+            out += &format!(
+                "lifetime       rho {lifetime_rho} covers {n} epoch(s); releases stop after that\n"
+            )
         }
         _ => out += "lifetime       no cap: epochs hold disjoint events (parallel composition)\n",
     }
     out += &format!("mechanism      {}\n\n", plan.mechanism.as_str());
     for (i, s) in plan.stats.iter().enumerate() {
-        out += &format!("{} ({}, {} group(s), rho {:.6})\n", s.name, s.kind, s.groups.len(), s.rho());
+        out += &format!(
+            "{} ({}, {} group(s), rho {:.6})\n",
+            s.name,
+            s.kind,
+            s.groups.len(),
+            s.rho()
+        );
         for c in &s.components {
             out += &format!(
                 "  {:<12} per-event L2 {:.6e}  epoch sensitivity L2 {:.6e}  node sigma {:.6e}\n",
@@ -489,7 +550,8 @@ pub fn plan_report(config: &Config, json: bool) -> Result<(String, bool), AppErr
             out += &format!("{:>22}", p.mechanism.as_str());
         }
         out += "\n";
-        let per_mech: Vec<Vec<(String, Vec<f64>)>> = alt.iter().map(|p| scope_errors(p, i)).collect();
+        let per_mech: Vec<Vec<(String, Vec<f64>)>> =
+            alt.iter().map(|p| scope_errors(p, i)).collect();
         for (row, (label, _)) in per_mech[0].iter().enumerate() {
             out += &format!("    {label:<16}");
             let best = (0..alt.len())
@@ -497,7 +559,11 @@ pub fn plan_report(config: &Config, json: bool) -> Result<(String, bool), AppErr
                 .unwrap_or(0);
             for (mi, m) in per_mech.iter().enumerate() {
                 let e = &m[row].1;
-                let cell = e.iter().map(|x| format!("{x:.4}")).collect::<Vec<_>>().join("/");
+                let cell = e
+                    .iter()
+                    .map(|x| format!("{x:.4}"))
+                    .collect::<Vec<_>>()
+                    .join("/");
                 let mark = if mi == best { "*" } else { " " };
                 out += &format!("{:>21}{mark}", cell);
             }
@@ -541,21 +607,37 @@ pub fn demo(args: &DemoArgs, w: &mut dyn Write) -> Result<Vec<Release>, AppError
         KeySource::Seed(s) => s,
         KeySource::Os => 20_260_302,
     };
-    let spec = FeedSpec { seed: feed_seed, days: args.days, ..FeedSpec::default() };
+    let spec = FeedSpec {
+        seed: feed_seed,
+        days: args.days,
+        ..FeedSpec::default()
+    };
     std::fs::create_dir_all(&args.out).map_err(io(format!("creating {}", args.out.display())))?;
     let feed_path = args.out.join("feed.jsonl");
     let mut feed_file = std::io::BufWriter::new(
-        std::fs::File::create(&feed_path).map_err(io(format!("creating {}", feed_path.display())))?,
+        std::fs::File::create(&feed_path)
+            .map_err(io(format!("creating {}", feed_path.display())))?,
     );
-    let mut engine = Engine::new(&config, key, EngineOptions { seeded, danger_keep_truth: true })?;
-    let mut sink = JsonlSink::create(&args.out).map_err(io(format!("creating {}", args.out.display())))?;
+    let mut engine = Engine::new(
+        &config,
+        key,
+        EngineOptions {
+            seeded,
+            danger_keep_truth: true,
+        },
+    )?;
+    let mut sink =
+        JsonlSink::create(&args.out).map_err(io(format!("creating {}", args.out.display())))?;
     let mut all = Vec::new();
     let mut n_lines = 0u64;
     let mut feed = DemoFeed::new(&spec);
     let started = std::time::Instant::now();
     for line in feed.by_ref() {
         n_lines += 1;
-        feed_file.write_all(&line).and_then(|_| feed_file.write_all(b"\n")).map_err(io("writing the demo feed"))?;
+        feed_file
+            .write_all(&line)
+            .and_then(|_| feed_file.write_all(b"\n"))
+            .map_err(io("writing the demo feed"))?;
         engine.handle_line(&line);
         while let Some(r) = engine.poll_release() {
             sink.publish(&r).map_err(io("writing releases"))?;
@@ -570,20 +652,26 @@ pub fn demo(args: &DemoArgs, w: &mut dyn Write) -> Result<Vec<Release>, AppError
     sink.flush().map_err(io("writing releases"))?;
     feed_file.flush().map_err(io("writing the demo feed"))?;
     let elapsed = started.elapsed();
-    print_demo_summary(w, &engine, &all, n_lines, elapsed, &args.out, seeded).map_err(io("printing"))?;
+    print_demo_summary(w, &engine, &all, n_lines, elapsed, &args.out, seeded)
+        .map_err(io("printing"))?;
     if let Some(addr) = args.serve {
         w.flush().map_err(io("printing"))?;
         let rt = tokio::runtime::Builder::new_multi_thread()
             .enable_all()
             .build()
             .map_err(io("starting the tokio runtime"))?;
-        rt.block_on(crate::runtime::daemon::serve_snapshot(&engine, all.clone(), addr))?;
+        rt.block_on(crate::runtime::daemon::serve_snapshot(
+            &engine,
+            all.clone(),
+            addr,
+        ))?;
     }
     Ok(all)
 }
 
 fn fmt_value(v: &serde_json::Value) -> String {
-    v.as_f64().map_or_else(|| "undefined".to_string(), |x| format!("{x:.1}"))
+    v.as_f64()
+        .map_or_else(|| "undefined".to_string(), |x| format!("{x:.1}"))
 }
 
 fn print_demo_summary(
@@ -598,13 +686,28 @@ fn print_demo_summary(
     let c = engine.counters();
     let plan = engine.plan();
     writeln!(w, "scrim demo — Quillhaven transit taps (invented data)")?;
-    writeln!(w, "{n_lines} lines in {:.1} s; {} windows closed; {} records released", elapsed.as_secs_f64(), c.windows_closed, all.len())?;
+    writeln!(
+        w,
+        "{n_lines} lines in {:.1} s; {} windows closed; {} records released",
+        elapsed.as_secs_f64(),
+        c.windows_closed,
+        all.len()
+    )?;
     if seeded {
-        writeln!(w, "NOTE: fixed seed — the noise is reproducible and these releases are NOT private")?;
+        writeln!(
+            w,
+            "NOTE: fixed seed — the noise is reproducible and these releases are NOT private"
+        )?;
     }
     writeln!(w)?;
     writeln!(w, "Input")?;
-    writeln!(w, "  accepted {:>9}   late {:>7}   rejected {:>7}", c.accepted, c.late, c.rejected_total())?;
+    writeln!(
+        w,
+        "  accepted {:>9}   late {:>7}   rejected {:>7}",
+        c.accepted,
+        c.late,
+        c.rejected_total()
+    )?;
     for (reason, n) in &c.rejected {
         writeln!(w, "    rejected: {reason:<20} {n:>7}")?;
     }
@@ -617,13 +720,24 @@ fn print_demo_summary(
 
     // Last epoch_to_date / window records of a few series, released ± 2·std_error vs true.
     let last_leaf_records = |stat: &str, scope: &str| -> Vec<&Release> {
-        let last = all.iter().filter(|r| r.stat == stat && r.scope == scope).map(|r| (r.epoch, r.leaf)).max();
+        let last = all
+            .iter()
+            .filter(|r| r.stat == stat && r.scope == scope)
+            .map(|r| (r.epoch, r.leaf))
+            .max();
         all.iter()
             .filter(|r| r.stat == stat && r.scope == scope && Some((r.epoch, r.leaf)) == last)
             .collect()
     };
-    writeln!(w, "Released vs true (last window closed; true = exact value after bounding and clamping)")?;
-    writeln!(w, "  {:<22} {:<14} {:<16} {:>26} {:>12}", "statistic", "scope", "group", "released ± 2·std_error", "true")?;
+    writeln!(
+        w,
+        "Released vs true (last window closed; true = exact value after bounding and clamping)"
+    )?;
+    writeln!(
+        w,
+        "  {:<22} {:<14} {:<16} {:>26} {:>12}",
+        "statistic", "scope", "group", "released ± 2·std_error", "true"
+    )?;
     for (stat, scope) in [
         ("taps_by_zone", "epoch_to_date"),
         ("taps_by_mode", "window"),
@@ -632,20 +746,43 @@ fn print_demo_summary(
     ] {
         for r in last_leaf_records(stat, scope) {
             let group = r.group.values().cloned().collect::<Vec<_>>().join(",");
-            let rel = format!("{} ± {:.1}", fmt_value(&r.value), 2.0 * r.std_error.as_f64().unwrap_or(f64::NAN));
+            let rel = format!(
+                "{} ± {:.1}",
+                fmt_value(&r.value),
+                2.0 * r.std_error.as_f64().unwrap_or(f64::NAN)
+            );
             let truth = r.truth.as_ref().map_or("-".to_string(), fmt_value);
-            writeln!(w, "  {:<22} {:<14} {:<16} {:>26} {:>12}", stat, scope, group, rel, truth)?;
+            writeln!(
+                w,
+                "  {:<22} {:<14} {:<16} {:>26} {:>12}",
+                stat, scope, group, rel, truth
+            )?;
         }
     }
     if let Some(r) = last_leaf_records("trip_model", "epoch_to_date").first() {
         writeln!(w)?;
-        writeln!(w, "Linear model trip_minutes ~ 1 + trip_km + transfers (epoch_to_date, last window)")?;
-        let generator = [("intercept", crate::demo::TRUE_INTERCEPT), ("trip_km", crate::demo::TRUE_KM), ("transfers", crate::demo::TRUE_TRANSFERS)];
-        writeln!(w, "  {:<12} {:>24} {:>14} {:>12}", "coefficient", "released ± 2·std_error", "exact fit", "generator")?;
+        writeln!(
+            w,
+            "Linear model trip_minutes ~ 1 + trip_km + transfers (epoch_to_date, last window)"
+        )?;
+        let generator = [
+            ("intercept", crate::demo::TRUE_INTERCEPT),
+            ("trip_km", crate::demo::TRUE_KM),
+            ("transfers", crate::demo::TRUE_TRANSFERS),
+        ];
+        writeln!(
+            w,
+            "  {:<12} {:>24} {:>14} {:>12}",
+            "coefficient", "released ± 2·std_error", "exact fit", "generator"
+        )?;
         for (name, truth_gen) in generator {
             let v = r.value.get(name).and_then(|v| v.as_f64());
             let s = r.std_error.get(name).and_then(|v| v.as_f64());
-            let exact = r.truth.as_ref().and_then(|t| t.get(name)).and_then(|v| v.as_f64());
+            let exact = r
+                .truth
+                .as_ref()
+                .and_then(|t| t.get(name))
+                .and_then(|v| v.as_f64());
             let rel = match (v, s) {
                 (Some(v), Some(s)) => format!("{v:.3} ± {:.3}", 2.0 * s),
                 _ => "no fit".to_string(),
@@ -661,9 +798,11 @@ fn print_demo_summary(
     // Honesty of the error bars over every scalar record.
     let mut covered = BTreeMap::<&str, (u64, u64)>::new();
     for r in all {
-        if let (Some(v), Some(s), Some(t)) =
-            (r.value.as_f64(), r.std_error.as_f64(), r.truth.as_ref().and_then(serde_json::Value::as_f64))
-        {
+        if let (Some(v), Some(s), Some(t)) = (
+            r.value.as_f64(),
+            r.std_error.as_f64(),
+            r.truth.as_ref().and_then(serde_json::Value::as_f64),
+        ) {
             let e = covered.entry(r.kind.as_str()).or_default();
             e.1 += 1;
             if (v - t).abs() <= 2.0 * s {
@@ -672,9 +811,16 @@ fn print_demo_summary(
         }
     }
     writeln!(w)?;
-    writeln!(w, "Error bars: share of records whose true value lies within ± 2·std_error (≈ 95% expected)")?;
+    writeln!(
+        w,
+        "Error bars: share of records whose true value lies within ± 2·std_error (≈ 95% expected)"
+    )?;
     for (kind, (inside, n)) in covered {
-        writeln!(w, "  {kind:<8} {:>6.1}% of {n}", 100.0 * inside as f64 / n.max(1) as f64)?;
+        writeln!(
+            w,
+            "  {kind:<8} {:>6.1}% of {n}",
+            100.0 * inside as f64 / n.max(1) as f64
+        )?;
     }
     writeln!(w)?;
     let l = engine.ledger();
@@ -696,12 +842,24 @@ fn print_demo_summary(
             l.epochs_charged(),
             rem
         )?,
-        None => writeln!(w, "  event level: epochs compose in parallel; rho {} in total", l.spent())?,
+        None => writeln!(
+            w,
+            "  event level: epochs compose in parallel; rho {} in total",
+            l.spent()
+        )?,
     }
     writeln!(w)?;
     writeln!(w, "Files")?;
-    writeln!(w, "  {}  (the generated feed)", out.join("feed.jsonl").display())?;
-    writeln!(w, "  {}  (one release record per line)", out.join("releases.jsonl").display())?;
+    writeln!(
+        w,
+        "  {}  (the generated feed)",
+        out.join("feed.jsonl").display()
+    )?;
+    writeln!(
+        w,
+        "  {}  (one release record per line)",
+        out.join("releases.jsonl").display()
+    )?;
     Ok(())
 }
 
@@ -719,6 +877,9 @@ pub fn scope_of(label: &str) -> Option<Scope> {
     match label {
         "window" => Some(Scope::Window),
         "epoch_to_date" => Some(Scope::EpochToDate),
-        _ => label.strip_prefix("trailing:").and_then(|n| n.parse().ok()).map(Scope::Trailing),
+        _ => label
+            .strip_prefix("trailing:")
+            .and_then(|n| n.parse().ok())
+            .map(Scope::Trailing),
     }
 }

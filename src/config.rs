@@ -8,8 +8,10 @@
 //!
 //! Every [`ConfigError`] names the key path it is about (`privacy.delta`, `stats[1].range`),
 //! or the file and line for TOML syntax errors, and says what would be valid. Validation stops
-//! at the first error, found in a fixed order (file order of sections, then the key order of
-//! this module), so the same file always gives the same message.
+//! at the first error. Unknown keys are looked for first, in sorted order; the rules of stage 2
+//! run in a fixed order (sections, then stats in file order, then keys in the order of this
+//! module). Only when several values have the wrong type is it unspecified which one is named,
+//! since the config crate stores tables as hash maps.
 //!
 //! Environment overrides use the prefix `SCRIM_` and `__` between path segments
 //! (`SCRIM_PRIVACY__RHO_PER_EPOCH=0.25`); a single `_` would split names such as
@@ -204,6 +206,10 @@ pub struct LinearConfig {
     pub intercept: bool,
     /// L2 clip of the feature vector (finite, > 0).
     pub feature_norm_bound: f64,
+    /// Optional per-feature clamps |x_j| ≤ b_j (one per feature, finite, > 0). They let the
+    /// engine normalise each feature by its own scale, so a feature with a small range is
+    /// not drowned by noise sized for the largest one.
+    pub feature_bounds: Option<Vec<f64>>,
     /// Clip of |target| (finite, > 0).
     pub target_bound: f64,
     /// How the model is fitted from the noisy statistics.
@@ -277,7 +283,8 @@ pub struct EventFields {
     /// `input.unit_field`.
     pub unit_field: Option<String>,
     /// Grouping fields with their public key lists, in order of first use across the stats.
-    /// Each field appears once: stats that share a field must share its key list.
+    /// Each field appears once; when several stats group by it, its list is the union of
+    /// theirs, in order of first mention.
     pub categories: Vec<(String, Vec<String>)>,
     /// Numeric fields (sum/mean `field`, linear `target` and `features`), in order of first
     /// use, each once.
@@ -321,11 +328,11 @@ pub enum ConfigError {
         reason: String,
     },
     /// A key scrim does not know (a typo, or a stray `SCRIM_*` variable).
-    #[error("unknown key `{key}` in {table}; valid keys there are: {valid}{}", env_note(.variable))]
+    #[error("unknown key `{key}` in {table}; valid keys there are: {valid}{}", stray_env_note(.variable))]
     UnknownKey {
         /// Full path of the unknown key.
         key: String,
-        /// The table it appeared in, e.g. `[privacy]` or `the top level`.
+        /// The table it appeared in, e.g. `[privacy]` or `the top-level table`.
         table: String,
         /// The keys that table accepts, comma-separated.
         valid: String,
@@ -370,27 +377,44 @@ pub enum ConfigError {
     },
 }
 
-/// The tail of a message for a value that came from the environment.
-fn env_note(variable: &Option<String>) -> String {
+/// The tail of a message for a key that an environment variable created.
+fn stray_env_note(variable: &Option<String>) -> String {
     match variable {
         Some(var) => format!(
-            " (this comes from the environment variable {var}: scrim reads every SCRIM_* \
+            " (this key comes from the environment variable {var}: scrim reads every SCRIM_* \
              variable as a config override, so unset or rename it)"
         ),
         None => String::new(),
     }
 }
 
+/// The tail of a message for a value that an environment variable set.
+fn env_note(variable: &Option<String>) -> String {
+    match variable {
+        Some(var) => format!(" (set by the environment variable {var}, a config override)"),
+        None => String::new(),
+    }
+}
+
 fn invalid(key: impl Into<String>, reason: impl Into<String>) -> ConfigError {
-    ConfigError::Invalid { key: key.into(), reason: reason.into() }
+    ConfigError::Invalid {
+        key: key.into(),
+        reason: reason.into(),
+    }
 }
 
 fn missing(key: impl Into<String>, help: impl Into<String>) -> ConfigError {
-    ConfigError::Missing { key: key.into(), help: help.into() }
+    ConfigError::Missing {
+        key: key.into(),
+        help: help.into(),
+    }
 }
 
 fn not_allowed(key: impl Into<String>, reason: impl Into<String>) -> ConfigError {
-    ConfigError::NotAllowed { key: key.into(), reason: reason.into() }
+    ConfigError::NotAllowed {
+        key: key.into(),
+        reason: reason.into(),
+    }
 }
 
 // ---------------------------------------------------------------------------------------------
@@ -517,6 +541,9 @@ pub struct RawStat {
     /// `feature_norm_bound` (linear).
     #[serde(default, deserialize_with = "strict::num")]
     pub feature_norm_bound: Option<f64>,
+    /// `feature_bounds` (linear, optional).
+    #[serde(default, deserialize_with = "strict::nums")]
+    pub feature_bounds: Option<Vec<f64>>,
     /// `target_bound` (linear).
     #[serde(default, deserialize_with = "strict::num")]
     pub target_bound: Option<f64>,
@@ -623,7 +650,9 @@ mod strict {
             Ok(v)
         }
         fn visit_str<E: de::Error>(self, v: &str) -> Result<f64, E> {
-            v.trim().parse().map_err(|_| E::invalid_type(Unexpected::Str(v), &self))
+            v.trim()
+                .parse()
+                .map_err(|_| E::invalid_type(Unexpected::Str(v), &self))
         }
     }
     impl<'de> Deserialize<'de> for Num {
@@ -648,7 +677,9 @@ mod strict {
             Err(E::invalid_type(Unexpected::Float(v), &self))
         }
         fn visit_str<E: de::Error>(self, v: &str) -> Result<i64, E> {
-            v.trim().parse().map_err(|_| E::invalid_type(Unexpected::Str(v), &self))
+            v.trim()
+                .parse()
+                .map_err(|_| E::invalid_type(Unexpected::Str(v), &self))
         }
     }
     impl<'de> Deserialize<'de> for Int {
@@ -724,7 +755,11 @@ mod strict {
         d: D,
     ) -> Result<Option<BTreeMap<String, Vec<String>>>, D::Error> {
         let lists = Option::<BTreeMap<String, Vec<Text>>>::deserialize(d)?;
-        Ok(lists.map(|m| m.into_iter().map(|(k, v)| (k, v.into_iter().map(|x| x.0).collect())).collect()))
+        Ok(lists.map(|m| {
+            m.into_iter()
+                .map(|(k, v)| (k, v.into_iter().map(|x| x.0).collect()))
+                .collect()
+        }))
     }
 }
 
@@ -776,7 +811,9 @@ impl Config {
         for (name, value) in std::env::vars_os() {
             // Names that are not Unicode cannot spell a config key; the config crate skips
             // them too.
-            let Ok(name) = name.into_string() else { continue };
+            let Ok(name) = name.into_string() else {
+                continue;
+            };
             if !name.to_lowercase().starts_with(ENV_PREFIX) {
                 continue;
             }
@@ -792,8 +829,10 @@ impl Config {
     /// Same, with an injected environment map instead of the process env (tests).
     /// Variables without the `SCRIM_` prefix are ignored, as in the process environment.
     pub fn load_with_env(path: &Path, env: HashMap<String, String>) -> Result<Config, ConfigError> {
-        let text = std::fs::read_to_string(path)
-            .map_err(|source| ConfigError::Read { path: path.to_path_buf(), source })?;
+        let text = std::fs::read_to_string(path).map_err(|source| ConfigError::Read {
+            path: path.to_path_buf(),
+            source,
+        })?;
         let raw = RawConfig::parse(&text, &format!("config file {}", path.display()), env)?;
         Config::try_from(raw)
     }
@@ -810,7 +849,11 @@ impl RawConfig {
     /// key is known and that every table is a table, and deserializes.
     ///
     /// `origin` names the text in syntax errors (`config file <path>`).
-    pub fn parse(toml: &str, origin: &str, env: HashMap<String, String>) -> Result<RawConfig, ConfigError> {
+    pub fn parse(
+        toml: &str,
+        origin: &str,
+        env: HashMap<String, String>,
+    ) -> Result<RawConfig, ConfigError> {
         let overrides = EnvOverrides::new(&env)?;
         let env_map: config::Map<String, String> = env.into_iter().collect();
         let merged = config::Config::builder()
@@ -823,9 +866,10 @@ impl RawConfig {
             )
             .build()
             .map_err(|err| match err {
-                config::ConfigError::FileParse { cause, .. } => {
-                    ConfigError::Syntax { origin: origin.to_string(), message: cause.to_string() }
-                }
+                config::ConfigError::FileParse { cause, .. } => ConfigError::Syntax {
+                    origin: origin.to_string(),
+                    message: cause.to_string(),
+                },
                 // The only other source is the environment map, already checked above, so
                 // this is not expected; keep the crate's message rather than guess.
                 other => ConfigError::Environment {
@@ -833,9 +877,12 @@ impl RawConfig {
                     reason: other.to_string(),
                 },
             })?;
-        let tree = config::Source::collect(&merged).map_err(|err| invalid("(top level)", err.to_string()))?;
+        let tree = config::Source::collect(&merged)
+            .map_err(|err| invalid("(top level)", err.to_string()))?;
         check_keys(&tree, &overrides)?;
-        merged.try_deserialize::<RawConfig>().map_err(|err| deserialize_error(err, &overrides))
+        merged
+            .try_deserialize::<RawConfig>()
+            .map_err(|err| deserialize_error(err, &overrides))
     }
 }
 
@@ -878,7 +925,12 @@ impl EnvOverrides {
     fn variable_for(&self, key: &str) -> Option<String> {
         self.by_path
             .iter()
-            .find(|(_, path)| path == key || path.strip_prefix(key).is_some_and(|rest| rest.starts_with('.')))
+            .find(|(_, path)| {
+                path == key
+                    || path
+                        .strip_prefix(key)
+                        .is_some_and(|rest| rest.starts_with('.'))
+            })
             .map(|(variable, _)| variable.clone())
     }
 }
@@ -904,7 +956,9 @@ impl<'de> de::Deserializer<'de> for KeyProbe<'_> {
     type Error = de::value::Error;
 
     fn deserialize_any<V: de::Visitor<'de>>(self, _visitor: V) -> Result<V::Value, Self::Error> {
-        Err(de::Error::custom("the key probe only reads struct field names"))
+        Err(de::Error::custom(
+            "the key probe only reads struct field names",
+        ))
     }
 
     fn deserialize_struct<V: de::Visitor<'de>>(
@@ -914,7 +968,9 @@ impl<'de> de::Deserializer<'de> for KeyProbe<'_> {
         _visitor: V,
     ) -> Result<V::Value, Self::Error> {
         self.0.set(fields);
-        Err(de::Error::custom("the key probe only reads struct field names"))
+        Err(de::Error::custom(
+            "the key probe only reads struct field names",
+        ))
     }
 
     serde::forward_to_deserialize_any! {
@@ -926,7 +982,11 @@ impl<'de> de::Deserializer<'de> for KeyProbe<'_> {
 
 /// Joins a key path and a key.
 fn join(path: &str, key: &str) -> String {
-    if path.is_empty() { key.to_string() } else { format!("{path}.{key}") }
+    if path.is_empty() {
+        key.to_string()
+    } else {
+        format!("{path}.{key}")
+    }
 }
 
 /// A short description of a value's type for wrong-type messages.
@@ -956,7 +1016,10 @@ fn check_table_keys(
 ) -> Result<(), ConfigError> {
     let mut names: Vec<&String> = table.keys().collect();
     names.sort();
-    match names.into_iter().find(|name| !valid.contains(&name.as_str())) {
+    match names
+        .into_iter()
+        .find(|name| !valid.contains(&name.as_str()))
+    {
         Some(name) => {
             let key = join(path, name);
             Err(ConfigError::UnknownKey {
@@ -991,8 +1054,17 @@ fn as_table<'v>(
 /// Walks the merged tree and refuses unknown keys and non-table sections, with messages that
 /// name the full key path, list the valid keys, and point at the environment variable when
 /// one set the key.
-fn check_keys(tree: &config::Map<String, config::Value>, env: &EnvOverrides) -> Result<(), ConfigError> {
-    check_table_keys(tree, "", "the top level", declared_keys::<RawConfig>(), env)?;
+fn check_keys(
+    tree: &config::Map<String, config::Value>,
+    env: &EnvOverrides,
+) -> Result<(), ConfigError> {
+    check_table_keys(
+        tree,
+        "",
+        "the top-level table",
+        declared_keys::<RawConfig>(),
+        env,
+    )?;
     let sections: [(&str, &[&str]); 6] = [
         ("input", declared_keys::<RawInput>()),
         ("window", declared_keys::<RawWindow>()),
@@ -1008,10 +1080,14 @@ fn check_keys(tree: &config::Map<String, config::Value>, env: &EnvOverrides) -> 
             check_table_keys(table, name, &label, valid, env)?;
         }
     }
-    let arrays: [(&str, &[&str]); 2] =
-        [("stats", declared_keys::<RawStat>()), ("sources", declared_keys::<RawSource>())];
+    let arrays: [(&str, &[&str]); 2] = [
+        ("stats", declared_keys::<RawStat>()),
+        ("sources", declared_keys::<RawSource>()),
+    ];
     for (name, valid) in arrays {
-        let Some(value) = tree.get(name) else { continue };
+        let Some(value) = tree.get(name) else {
+            continue;
+        };
         let label = format!("[[{name}]]");
         let config::ValueKind::Array(entries) = &value.kind else {
             return Err(ConfigError::WrongType {
@@ -1040,8 +1116,13 @@ fn check_keys(tree: &config::Map<String, config::Value>, env: &EnvOverrides) -> 
 /// Turns a deserialization error of the config crate into a [`ConfigError`] with the key path.
 fn deserialize_error(err: config::ConfigError, env: &EnvOverrides) -> ConfigError {
     match err {
-        config::ConfigError::Type { origin, unexpected, expected, key } => {
-            let key = key.unwrap_or_else(|| "(top level)".into());
+        config::ConfigError::Type {
+            origin,
+            unexpected,
+            expected,
+            key,
+        } => {
+            let key = key.map_or_else(|| "(top level)".into(), |k| dotted(&k));
             let from_env = origin.as_deref() == Some("the environment");
             ConfigError::WrongType {
                 variable: if from_env {
@@ -1055,10 +1136,13 @@ fn deserialize_error(err: config::ConfigError, env: &EnvOverrides) -> ConfigErro
             }
         }
         config::ConfigError::At { error, key, .. } => {
-            let key = key.unwrap_or_else(|| "(top level)".into());
+            let key = key.map_or_else(|| "(top level)".into(), |k| dotted(&k));
             let message = error.to_string();
             // serde's standard wording is "invalid type: <found>, expected <expected>".
-            match message.strip_prefix("invalid type: ").and_then(|rest| rest.split_once(", expected ")) {
+            match message
+                .strip_prefix("invalid type: ")
+                .and_then(|rest| rest.split_once(", expected "))
+            {
                 Some((found, expected)) => ConfigError::WrongType {
                     variable: env.variable_for(&key),
                     expected: friendly_type(expected),
@@ -1071,6 +1155,21 @@ fn deserialize_error(err: config::ConfigError, env: &EnvOverrides) -> ConfigErro
         config::ConfigError::NotFound(key) => missing(key, "see contract.md for the required keys"),
         other => invalid("(top level)", other.to_string()),
     }
+}
+
+/// Restores the dot the config crate leaves out after an index (`stats[0]group_by` becomes
+/// `stats[0].group_by`), so keys read the same as in the rest of this module.
+fn dotted(key: &str) -> String {
+    let mut out = String::with_capacity(key.len() + 4);
+    let mut prev = None;
+    for c in key.chars() {
+        if prev == Some(']') && c != '[' && c != '.' {
+            out.push('.');
+        }
+        out.push(c);
+        prev = Some(c);
+    }
+    out
 }
 
 /// Says types in TOML words rather than serde's or the config crate's.
@@ -1112,7 +1211,9 @@ impl TryFrom<RawConfig> for Config {
         check_across_stats(&stats)?;
         let sources = resolve_sources(raw.sources.unwrap_or_default())?;
         let http = resolve_http(raw.http.unwrap_or_default())?;
-        let output = OutputConfig { dir: resolve_dir(raw.output.unwrap_or_default().dir, "output.dir", "out")? };
+        let output = OutputConfig {
+            dir: resolve_dir(raw.output.unwrap_or_default().dir, "output.dir", "out")?,
+        };
         let raw_state = raw.state.unwrap_or_default();
         let state = StateConfig {
             dir: resolve_dir(raw_state.dir, "state.dir", "state")?,
@@ -1123,7 +1224,16 @@ impl TryFrom<RawConfig> for Config {
                 ONE_SECOND,
             )?,
         };
-        Ok(Config { input, window, privacy, stats, sources, http, output, state })
+        Ok(Config {
+            input,
+            window,
+            privacy,
+            stats,
+            sources,
+            http,
+            output,
+            state,
+        })
     }
 }
 
@@ -1131,7 +1241,10 @@ impl TryFrom<RawConfig> for Config {
 fn field_name(value: Option<String>, key: &str, help: &str) -> Result<String, ConfigError> {
     match value {
         None => Err(missing(key, help)),
-        Some(name) if name.is_empty() => Err(invalid(key, "must not be empty: give the event field's name")),
+        Some(name) if name.is_empty() => Err(invalid(
+            key,
+            "must not be empty: give the event field's name",
+        )),
         Some(name) => Ok(name),
     }
 }
@@ -1149,7 +1262,9 @@ fn resolve_input(raw: RawInput) -> Result<InputConfig, ConfigError> {
             if unit == time_field {
                 return Err(invalid(
                     "input.unit_field",
-                    format!("\"{unit}\" is also input.time_field; the privacy unit must be a different field"),
+                    format!(
+                        "\"{unit}\" is also input.time_field; the privacy unit must be a different field"
+                    ),
                 ));
             }
             Some(unit)
@@ -1162,12 +1277,18 @@ fn resolve_input(raw: RawInput) -> Result<InputConfig, ConfigError> {
             _ => {
                 return Err(invalid(
                     "input.max_line_bytes",
-                    format!("{n} is out of range: valid values are {MIN_MAX_LINE_BYTES} ..= {MAX_MAX_LINE_BYTES} (16 MiB)"),
+                    format!(
+                        "{n} is out of range: valid values are {MIN_MAX_LINE_BYTES} ..= {MAX_MAX_LINE_BYTES} (16 MiB)"
+                    ),
                 ));
             }
         },
     };
-    Ok(InputConfig { time_field, unit_field, max_line_bytes })
+    Ok(InputConfig {
+        time_field,
+        unit_field,
+        max_line_bytes,
+    })
 }
 
 /// Parses an optional duration (falling back to `default`) and checks it is at least `min`.
@@ -1180,31 +1301,52 @@ fn duration_at_least(
     let text = value.as_deref().unwrap_or(default);
     let duration = parse_duration(text).map_err(|err| invalid(key, err.to_string()))?;
     if duration < min {
-        return Err(invalid(key, format!("\"{text}\" is too short: the minimum is {min}")));
+        return Err(invalid(
+            key,
+            format!("\"{text}\" is too short: the minimum is {min}"),
+        ));
     }
     Ok(duration)
 }
 
 fn resolve_window(raw: RawWindow) -> Result<WindowConfig, ConfigError> {
     let Some(length_text) = raw.length else {
-        return Err(missing("window.length", "give the window length as a duration, e.g. \"1h\" (s, m, h, d)"));
+        return Err(missing(
+            "window.length",
+            "give the window length as a duration, e.g. \"1h\" (s, m, h, d)",
+        ));
     };
     let length = duration_at_least(Some(length_text), "window.length", "", ONE_SECOND)?;
-    let allowed_lateness = duration_at_least(raw.allowed_lateness, "window.allowed_lateness", "5m", DurationMs(0))?;
-    // An overflow here means a length beyond any real use; report it as the bound it breaks.
+    let lateness_is_default = raw.allowed_lateness.is_none();
+    let allowed_lateness = duration_at_least(
+        raw.allowed_lateness,
+        "window.allowed_lateness",
+        "5m",
+        DurationMs(0),
+    )?;
+    // Saturating: a product beyond i64 milliseconds is beyond any lateness anyway.
     let max_lateness = length.0.saturating_mul(MAX_LATENESS_WINDOWS);
     if allowed_lateness.0 >= max_lateness {
+        let default_note = if lateness_is_default {
+            " (5m is the default; set it lower for short windows)"
+        } else {
+            ""
+        };
         return Err(invalid(
             "window.allowed_lateness",
             format!(
-                "{allowed_lateness} must be less than {MAX_LATENESS_WINDOWS} window lengths ({}), \
+                "{allowed_lateness}{default_note} must be less than {MAX_LATENESS_WINDOWS} window lengths ({}), \
                  since every window that long stays open in memory",
                 DurationMs(max_lateness)
             ),
         ));
     }
     let idle_close = duration_at_least(raw.idle_close, "window.idle_close", "2m", ONE_SECOND)?;
-    Ok(WindowConfig { length, allowed_lateness, idle_close })
+    Ok(WindowConfig {
+        length,
+        allowed_lateness,
+        idle_close,
+    })
 }
 
 /// A required finite, strictly positive number.
@@ -1212,7 +1354,10 @@ fn positive(value: f64, key: &str, what: &str) -> Result<f64, ConfigError> {
     if value.is_finite() && value > 0.0 {
         Ok(value)
     } else {
-        Err(invalid(key, format!("{value} is not allowed: {what} must be a finite number greater than 0")))
+        Err(invalid(
+            key,
+            format!("{value} is not allowed: {what} must be a finite number greater than 0"),
+        ))
     }
 }
 
@@ -1220,21 +1365,30 @@ fn positive(value: f64, key: &str, what: &str) -> Result<f64, ConfigError> {
 fn int_in(value: i64, key: &str, lo: i64, hi: i64, why: &str) -> Result<u32, ConfigError> {
     match u32::try_from(value) {
         Ok(v) if (lo..=hi).contains(&value) => Ok(v),
-        _ => Err(invalid(key, format!("{value} is out of range: valid values are {lo} ..= {hi}{why}"))),
+        _ => Err(invalid(
+            key,
+            format!("{value} is out of range: valid values are {lo} ..= {hi}{why}"),
+        )),
     }
 }
 
 fn resolve_privacy(raw: RawPrivacy, input: &InputConfig) -> Result<PrivacyConfig, ConfigError> {
     let rho_per_epoch = positive(
         raw.rho_per_epoch.ok_or_else(|| {
-            missing("privacy.rho_per_epoch", "the zCDP budget one epoch's releases spend, a number > 0 (e.g. 0.5)")
+            missing(
+                "privacy.rho_per_epoch",
+                "the zCDP budget one epoch's releases spend, a number > 0 (e.g. 0.5)",
+            )
         })?,
         "privacy.rho_per_epoch",
         "the zCDP budget per epoch",
     )?;
-    let delta = raw
-        .delta
-        .ok_or_else(|| missing("privacy.delta", "the δ of the reported (ε, δ), in (0, 1e-3], e.g. 1e-9"))?;
+    let delta = raw.delta.ok_or_else(|| {
+        missing(
+            "privacy.delta",
+            "the δ of the reported (ε, δ), in (0, 1e-3], e.g. 1e-9",
+        )
+    })?;
     if !(delta > 0.0 && delta <= MAX_DELTA) {
         return Err(invalid(
             "privacy.delta",
@@ -1246,7 +1400,10 @@ fn resolve_privacy(raw: RawPrivacy, input: &InputConfig) -> Result<PrivacyConfig
     }
     let epoch_windows = int_in(
         raw.epoch_windows.ok_or_else(|| {
-            missing("privacy.epoch_windows", "the number of windows per epoch (tree leaves), 1 ..= 1048576")
+            missing(
+                "privacy.epoch_windows",
+                "the number of windows per epoch (tree leaves), 1 ..= 1048576",
+            )
         })?,
         "privacy.epoch_windows",
         1,
@@ -1267,12 +1424,17 @@ fn resolve_privacy(raw: RawPrivacy, input: &InputConfig) -> Result<PrivacyConfig
             let requirement = |key: &str, help: &str| {
                 missing(
                     format!("privacy.{key}"),
-                    format!("required because input.unit_field = \"{unit}\" makes the privacy unit a whole {unit}: {help}"),
+                    format!(
+                        "required because input.unit_field = \"{unit}\" makes the privacy unit a whole {unit}: {help}"
+                    ),
                 )
             };
-            let lifetime_rho = raw
-                .lifetime_rho
-                .ok_or_else(|| requirement("lifetime_rho", "the cap on ρ one unit may lose over all epochs"))?;
+            let lifetime_rho = raw.lifetime_rho.ok_or_else(|| {
+                requirement(
+                    "lifetime_rho",
+                    "the cap on ρ one unit may lose over all epochs",
+                )
+            })?;
             let lifetime_rho = positive(lifetime_rho, "privacy.lifetime_rho", "the lifetime ρ")?;
             if lifetime_rho < rho_per_epoch {
                 return Err(invalid(
@@ -1283,13 +1445,24 @@ fn resolve_privacy(raw: RawPrivacy, input: &InputConfig) -> Result<PrivacyConfig
                     ),
                 ));
             }
-            let max_events = raw
-                .max_events_per_window
-                .ok_or_else(|| requirement("max_events_per_window", "events one unit may contribute per window"))?;
-            let max_events_per_window =
-                int_in(max_events, "privacy.max_events_per_window", 1, MAX_EVENTS_PER_WINDOW, "")?;
+            let max_events = raw.max_events_per_window.ok_or_else(|| {
+                requirement(
+                    "max_events_per_window",
+                    "events one unit may contribute per window",
+                )
+            })?;
+            let max_events_per_window = int_in(
+                max_events,
+                "privacy.max_events_per_window",
+                1,
+                MAX_EVENTS_PER_WINDOW,
+                "",
+            )?;
             let max_windows = raw.max_windows_per_epoch.ok_or_else(|| {
-                requirement("max_windows_per_epoch", "windows of one epoch a unit may contribute to")
+                requirement(
+                    "max_windows_per_epoch",
+                    "windows of one epoch a unit may contribute to",
+                )
             })?;
             let max_windows_per_epoch = int_in(
                 max_windows,
@@ -1298,7 +1471,11 @@ fn resolve_privacy(raw: RawPrivacy, input: &InputConfig) -> Result<PrivacyConfig
                 i64::from(epoch_windows),
                 " (at most privacy.epoch_windows)",
             )?;
-            Some(UnitBounds { lifetime_rho, max_events_per_window, max_windows_per_epoch })
+            Some(UnitBounds {
+                lifetime_rho,
+                max_events_per_window,
+                max_windows_per_epoch,
+            })
         }
         None => {
             let event_level = "without input.unit_field scrim gives event-level privacy: every event is its \
@@ -1315,7 +1492,13 @@ fn resolve_privacy(raw: RawPrivacy, input: &InputConfig) -> Result<PrivacyConfig
             None
         }
     };
-    Ok(PrivacyConfig { rho_per_epoch, delta, epoch_windows, mechanism, unit_bounds })
+    Ok(PrivacyConfig {
+        rho_per_epoch,
+        delta,
+        epoch_windows,
+        mechanism,
+        unit_bounds,
+    })
 }
 
 /// Which keys each stat kind takes beyond the common ones (name, kind, group_by, weight,
@@ -1328,6 +1511,7 @@ fn kind_keys(kind: &str) -> &'static [&'static str] {
             "features",
             "intercept",
             "feature_norm_bound",
+            "feature_bounds",
             "target_bound",
             "fit",
             "ridge_lambda",
@@ -1346,52 +1530,86 @@ fn present_kind_keys(raw: &RawStat) -> Vec<&'static str> {
         ("features", raw.features.is_some()),
         ("intercept", raw.intercept.is_some()),
         ("feature_norm_bound", raw.feature_norm_bound.is_some()),
+        ("feature_bounds", raw.feature_bounds.is_some()),
         ("target_bound", raw.target_bound.is_some()),
         ("fit", raw.fit.is_some()),
         ("ridge_lambda", raw.ridge_lambda.is_some()),
         ("l1_radius", raw.l1_radius.is_some()),
     ];
-    present.iter().filter(|(_, set)| *set).map(|(key, _)| *key).collect()
+    present
+        .iter()
+        .filter(|(_, set)| *set)
+        .map(|(key, _)| *key)
+        .collect()
 }
 
 /// Refuses a stat field that is the time or unit field: those are parsed specially and never
 /// aggregated (the unit id must never be released).
 fn check_value_field(field: &str, key: &str, input: &InputConfig) -> Result<(), ConfigError> {
     if field == input.time_field {
-        return Err(invalid(key, format!("\"{field}\" is input.time_field; a stat cannot use the event time as a value")));
+        return Err(invalid(
+            key,
+            format!("\"{field}\" is input.time_field; a stat cannot use the event time as a value"),
+        ));
     }
     if input.unit_field.as_deref() == Some(field) {
         return Err(invalid(
             key,
-            format!("\"{field}\" is input.unit_field; the privacy unit's id is never aggregated or released"),
+            format!(
+                "\"{field}\" is input.unit_field; the privacy unit's id is never aggregated or released"
+            ),
         ));
     }
     Ok(())
 }
 
-fn resolve_stat(idx: usize, raw: RawStat, input: &InputConfig, privacy: &PrivacyConfig) -> Result<StatConfig, ConfigError> {
+fn resolve_stat(
+    idx: usize,
+    raw: RawStat,
+    input: &InputConfig,
+    privacy: &PrivacyConfig,
+) -> Result<StatConfig, ConfigError> {
     let at = format!("stats[{idx}]");
     let key = |name: &str| format!("{at}.{name}");
 
-    let name = raw.name.clone().ok_or_else(|| missing(key("name"), "give the stat a name matching [a-z0-9_]+"))?;
-    if name.is_empty() || !name.bytes().all(|b| b.is_ascii_lowercase() || b.is_ascii_digit() || b == b'_') {
+    let name = raw
+        .name
+        .clone()
+        .ok_or_else(|| missing(key("name"), "give the stat a name matching [a-z0-9_]+"))?;
+    if name.is_empty()
+        || !name
+            .bytes()
+            .all(|b| b.is_ascii_lowercase() || b.is_ascii_digit() || b == b'_')
+    {
         return Err(invalid(
             key("name"),
             format!("\"{name}\" is not a valid name: use one or more of a-z, 0-9 and _"),
         ));
     }
     let kind_name = raw.kind.clone().ok_or_else(|| {
-        missing(key("kind"), "one of \"count\", \"sum\", \"mean\", \"linear\"")
+        missing(
+            key("kind"),
+            "one of \"count\", \"sum\", \"mean\", \"linear\"",
+        )
     })?;
     if !KIND_NAMES.contains(&kind_name.as_str()) {
         return Err(invalid(
             key("kind"),
-            format!("\"{kind_name}\" is not a kind: valid kinds are \"count\", \"sum\", \"mean\", \"linear\""),
+            format!(
+                "\"{kind_name}\" is not a kind: valid kinds are \"count\", \"sum\", \"mean\", \"linear\""
+            ),
         ));
     }
     let allowed = kind_keys(&kind_name);
-    if let Some(extra) = present_kind_keys(&raw).into_iter().find(|k| !allowed.contains(k)) {
-        let owner = if kind_keys("sum").contains(&extra) { "kind = \"sum\" or \"mean\"" } else { "kind = \"linear\"" };
+    if let Some(extra) = present_kind_keys(&raw)
+        .into_iter()
+        .find(|k| !allowed.contains(k))
+    {
+        let owner = if kind_keys("sum").contains(&extra) {
+            "kind = \"sum\" or \"mean\""
+        } else {
+            "kind = \"linear\""
+        };
         return Err(not_allowed(
             key(extra),
             format!("kind = \"{kind_name}\" does not take {extra}; it belongs to {owner}"),
@@ -1411,35 +1629,62 @@ fn resolve_stat(idx: usize, raw: RawStat, input: &InputConfig, privacy: &Privacy
             " (a trailing scope spans at least 2 windows and at most privacy.epoch_windows)",
         )?;
         if trailing.contains(&windows) {
-            return Err(invalid(t_key, format!("{windows} appears twice; list each trailing scope once")));
+            return Err(invalid(
+                t_key,
+                format!("{windows} appears twice; list each trailing scope once"),
+            ));
         }
         trailing.push(windows);
     }
 
-    let group_by = resolve_groups(&at, raw.group_by.clone().unwrap_or_default(), raw.keys.clone().unwrap_or_default(), input)?;
+    let group_by = resolve_groups(
+        &at,
+        raw.group_by.clone().unwrap_or_default(),
+        raw.keys.clone().unwrap_or_default(),
+        input,
+    )?;
 
     let kind = match kind_name.as_str() {
         "count" => StatKind::Count,
         "sum" | "mean" => {
-            let field = field_name(raw.field, &key("field"), "name the numeric event field to aggregate")?;
+            let field = field_name(
+                raw.field,
+                &key("field"),
+                "name the numeric event field to aggregate",
+            )?;
             check_value_field(&field, &key("field"), input)?;
             let range = raw.range.ok_or_else(|| {
-                missing(key("range"), "give the clamp range as [lo, hi] with finite lo < hi, e.g. [0, 900]")
+                missing(
+                    key("range"),
+                    "give the clamp range as [lo, hi] with finite lo < hi, e.g. [0, 900]",
+                )
             })?;
             let range = match range.as_slice() {
                 &[lo, hi] if lo.is_finite() && hi.is_finite() && lo < hi => (lo, hi),
                 _ => {
                     return Err(invalid(
                         key("range"),
-                        format!("{range:?} is not a range: write [lo, hi] with two finite numbers and lo < hi"),
+                        format!(
+                            "{range:?} is not a range: write [lo, hi] with two finite numbers and lo < hi"
+                        ),
                     ));
                 }
             };
-            if kind_name == "sum" { StatKind::Sum { field, range } } else { StatKind::Mean { field, range } }
+            if kind_name == "sum" {
+                StatKind::Sum { field, range }
+            } else {
+                StatKind::Mean { field, range }
+            }
         }
         _ => StatKind::Linear(resolve_linear(&at, raw, input)?),
     };
-    Ok(StatConfig { name, kind, group_by, weight, trailing })
+    Ok(StatConfig {
+        name,
+        kind,
+        group_by,
+        weight,
+        trailing,
+    })
 }
 
 fn resolve_groups(
@@ -1452,11 +1697,17 @@ fn resolve_groups(
     for (g_idx, field) in group_by.into_iter().enumerate() {
         let g_key = format!("{at}.group_by[{g_idx}]");
         if field.is_empty() {
-            return Err(invalid(g_key, "must not be empty: give the event field to group by"));
+            return Err(invalid(
+                g_key,
+                "must not be empty: give the event field to group by",
+            ));
         }
         check_value_field(&field, &g_key, input)?;
         if groups.iter().any(|g| g.field == field) {
-            return Err(invalid(g_key, format!("\"{field}\" appears twice in group_by; list each field once")));
+            return Err(invalid(
+                g_key,
+                format!("\"{field}\" appears twice in group_by; list each field once"),
+            ));
         }
         let k_key = format!("{at}.keys.{field}");
         let Some(list) = keys.remove(&field) else {
@@ -1471,13 +1722,19 @@ fn resolve_groups(
         if list.is_empty() || list.len() > MAX_GROUP_KEYS {
             return Err(invalid(
                 k_key,
-                format!("has {} keys: a group field takes 1 ..= {MAX_GROUP_KEYS} keys", list.len()),
+                format!(
+                    "has {} keys: a group field takes 1 ..= {MAX_GROUP_KEYS} keys",
+                    list.len()
+                ),
             ));
         }
         let mut seen = BTreeSet::new();
         for (k_idx, group_key) in list.iter().enumerate() {
             if group_key.is_empty() {
-                return Err(invalid(format!("{k_key}[{k_idx}]"), "keys must be non-empty strings"));
+                return Err(invalid(
+                    format!("{k_key}[{k_idx}]"),
+                    "keys must be non-empty strings",
+                ));
             }
             if !seen.insert(group_key.as_str()) {
                 return Err(invalid(
@@ -1493,72 +1750,141 @@ fn resolve_groups(
     if let Some(field) = keys.keys().next() {
         return Err(not_allowed(
             format!("{at}.keys.{field}"),
-            format!("\"{field}\" is not in {at}.group_by; add it to group_by or remove its key list"),
+            format!(
+                "\"{field}\" is not in {at}.group_by; add it to group_by or remove its key list"
+            ),
         ));
     }
     Ok(groups)
 }
 
-fn resolve_linear(at: &str, raw: RawStat, input: &InputConfig) -> Result<LinearConfig, ConfigError> {
+fn resolve_linear(
+    at: &str,
+    raw: RawStat,
+    input: &InputConfig,
+) -> Result<LinearConfig, ConfigError> {
     let key = |name: &str| format!("{at}.{name}");
-    let target = field_name(raw.target, &key("target"), "name the numeric event field the model predicts")?;
+    let target = field_name(
+        raw.target,
+        &key("target"),
+        "name the numeric event field the model predicts",
+    )?;
     check_value_field(&target, &key("target"), input)?;
-    let features =
-        raw.features.ok_or_else(|| missing(key("features"), "list the numeric feature fields, e.g. [\"trip_km\"]"))?;
+    let features = raw.features.ok_or_else(|| {
+        missing(
+            key("features"),
+            "list the numeric feature fields, e.g. [\"trip_km\"]",
+        )
+    })?;
     if features.is_empty() {
-        return Err(invalid(key("features"), "is empty: list at least one numeric feature field"));
+        return Err(invalid(
+            key("features"),
+            "is empty: list at least one numeric feature field",
+        ));
     }
     for (f_idx, feature) in features.iter().enumerate() {
         let f_key = format!("{at}.features[{f_idx}]");
         if feature.is_empty() {
-            return Err(invalid(f_key, "must not be empty: give a numeric event field"));
+            return Err(invalid(
+                f_key,
+                "must not be empty: give a numeric event field",
+            ));
         }
         check_value_field(feature, &f_key, input)?;
         if *feature == target {
-            return Err(invalid(f_key, format!("\"{feature}\" is the target; a feature must be another field")));
+            return Err(invalid(
+                f_key,
+                format!("\"{feature}\" is the target; a feature must be another field"),
+            ));
         }
         if features[..f_idx].contains(feature) {
-            return Err(invalid(f_key, format!("\"{feature}\" appears twice; list each feature once")));
+            return Err(invalid(
+                f_key,
+                format!("\"{feature}\" appears twice; list each feature once"),
+            ));
         }
     }
     let feature_norm_bound = positive(
         raw.feature_norm_bound.ok_or_else(|| {
-            missing(key("feature_norm_bound"), "the L2 clip of the feature vector, a finite number > 0")
+            missing(
+                key("feature_norm_bound"),
+                "the L2 clip of the feature vector, a finite number > 0",
+            )
         })?,
         &key("feature_norm_bound"),
         "a clipping bound",
     )?;
+    let feature_bounds = match &raw.feature_bounds {
+        None => None,
+        Some(b) => {
+            if b.len() != features.len() {
+                return Err(invalid(
+                    key("feature_bounds"),
+                    format!(
+                        "{} bounds for {} features: give one clamp |x| ≤ b per feature, in the order of `features`",
+                        b.len(),
+                        features.len()
+                    ),
+                ));
+            }
+            let mut out = Vec::with_capacity(b.len());
+            for v in b {
+                out.push(positive(*v, &key("feature_bounds"), "a clipping bound")?);
+            }
+            Some(out)
+        }
+    };
     let target_bound = positive(
-        raw.target_bound
-            .ok_or_else(|| missing(key("target_bound"), "the clip of |target|, a finite number > 0"))?,
+        raw.target_bound.ok_or_else(|| {
+            missing(
+                key("target_bound"),
+                "the clip of |target|, a finite number > 0",
+            )
+        })?,
         &key("target_bound"),
         "a clipping bound",
     )?;
     let fit = match raw.fit.as_deref().unwrap_or("ridge") {
         "ridge" => {
             if raw.l1_radius.is_some() {
-                return Err(not_allowed(key("l1_radius"), "l1_radius only applies with fit = \"l1\""));
+                return Err(not_allowed(
+                    key("l1_radius"),
+                    "l1_radius only applies with fit = \"l1\"",
+                ));
             }
             let lambda = raw.ridge_lambda.unwrap_or(0.0);
             if !(lambda.is_finite() && lambda >= 0.0) {
                 return Err(invalid(
                     key("ridge_lambda"),
-                    format!("{lambda} is not allowed: the ridge penalty must be a finite number ≥ 0"),
+                    format!(
+                        "{lambda} is not allowed: the ridge penalty must be a finite number ≥ 0"
+                    ),
                 ));
             }
             FitConfig::Ridge { lambda }
         }
         "l1" => {
             if raw.ridge_lambda.is_some() {
-                return Err(not_allowed(key("ridge_lambda"), "ridge_lambda only applies with fit = \"ridge\""));
+                return Err(not_allowed(
+                    key("ridge_lambda"),
+                    "ridge_lambda only applies with fit = \"ridge\"",
+                ));
             }
             let radius = raw.l1_radius.ok_or_else(|| {
-                missing(key("l1_radius"), "fit = \"l1\" needs the L1 ball radius, a finite number > 0")
+                missing(
+                    key("l1_radius"),
+                    "fit = \"l1\" needs the L1 ball radius, a finite number > 0",
+                )
             })?;
-            FitConfig::L1 { radius: positive(radius, &key("l1_radius"), "the L1 radius")? }
+            FitConfig::L1 {
+                radius: positive(radius, &key("l1_radius"), "the L1 radius")?,
+            }
         }
         other => {
-            return Err(invalid(key("fit"), format!("\"{other}\" is not a fit: valid values are \"ridge\", \"l1\"")));
+            return Err(invalid(
+                key("fit"),
+                format!("\"{other}\" is not a fit: valid values are \"ridge\", \"l1\""),
+            ));
         }
     };
     Ok(LinearConfig {
@@ -1566,6 +1892,7 @@ fn resolve_linear(at: &str, raw: RawStat, input: &InputConfig) -> Result<LinearC
         features,
         intercept: raw.intercept.unwrap_or(true),
         feature_norm_bound,
+        feature_bounds,
         target_bound,
         fit,
     })
@@ -1576,47 +1903,34 @@ fn number_fields(stat: &StatConfig) -> Vec<&str> {
     match &stat.kind {
         StatKind::Count => Vec::new(),
         StatKind::Sum { field, .. } | StatKind::Mean { field, .. } => vec![field.as_str()],
-        StatKind::Linear(lin) => {
-            std::iter::once(lin.target.as_str()).chain(lin.features.iter().map(String::as_str)).collect()
-        }
+        StatKind::Linear(lin) => std::iter::once(lin.target.as_str())
+            .chain(lin.features.iter().map(String::as_str))
+            .collect(),
     }
 }
 
-/// Rules between stats: unique names; one key list per group field; no field both a category
-/// and a number. The last two exist because the line parser reads each field once, into one
-/// public domain or as one number ([`EventFields`]).
+/// Rules between stats: unique names, and no field both a category and a number. The second
+/// exists because the line parser reads each field once, either into a public domain or as a
+/// number ([`EventFields`]). Stats may group by the same field with different key lists; the
+/// parser's domain is then their union.
 fn check_across_stats(stats: &[StatConfig]) -> Result<(), ConfigError> {
     let mut names: HashMap<&str, usize> = HashMap::new();
-    let mut categories: HashMap<&str, (usize, &[String])> = HashMap::new();
     let mut numbers: HashMap<&str, usize> = HashMap::new();
     for (idx, stat) in stats.iter().enumerate() {
         if let Some(first) = names.insert(&stat.name, idx) {
             return Err(invalid(
                 format!("stats[{idx}].name"),
-                format!("\"{}\" is already the name of stats[{first}]; stat names must be unique", stat.name),
+                format!(
+                    "\"{}\" is already the name of stats[{first}]; stat names must be unique",
+                    stat.name
+                ),
             ));
-        }
-        for group in &stat.group_by {
-            if let Some(&(first, keys)) = categories.get(group.field.as_str()) {
-                if keys != group.keys.as_slice() {
-                    return Err(invalid(
-                        format!("stats[{idx}].keys.{}", group.field),
-                        format!(
-                            "differs from stats[{first}].keys.{}: each event field has one public key list, \
-                             so stats grouping by the same field must list the same keys in the same order",
-                            group.field
-                        ),
-                    ));
-                }
-            } else {
-                categories.insert(&group.field, (idx, &group.keys));
-            }
         }
         for field in number_fields(stat) {
             numbers.entry(field).or_insert(idx);
         }
     }
-    // Report the clash at the later of the two uses, in stat order.
+    // Reported at the group_by entry, in stat order.
     for (idx, stat) in stats.iter().enumerate() {
         for (g_idx, group) in stat.group_by.iter().enumerate() {
             if let Some(&other) = numbers.get(group.field.as_str()) {
@@ -1650,7 +1964,9 @@ fn resolve_sources(raw: Vec<RawSource>) -> Result<Vec<SourceConfig>, ConfigError
             other => {
                 return Err(invalid(
                     key("kind"),
-                    format!("\"{other}\" is not a source kind: valid kinds are \"stdin\", \"file\", \"tcp\""),
+                    format!(
+                        "\"{other}\" is not a source kind: valid kinds are \"stdin\", \"file\", \"tcp\""
+                    ),
                 ));
             }
         };
@@ -1660,16 +1976,24 @@ fn resolve_sources(raw: Vec<RawSource>) -> Result<Vec<SourceConfig>, ConfigError
             ("max_connections", src.max_connections.is_some()),
             ("idle_timeout", src.idle_timeout.is_some()),
         ];
-        if let Some((extra, _)) = present.iter().find(|(name, set)| *set && !allowed.contains(name)) {
+        if let Some((extra, _)) = present
+            .iter()
+            .find(|(name, set)| *set && !allowed.contains(name))
+        {
             return Err(not_allowed(
                 key(extra),
-                format!("a \"{kind}\" source does not take {extra} (file takes path; tcp takes listen, max_connections, idle_timeout)"),
+                format!(
+                    "a \"{kind}\" source does not take {extra} (file takes path; tcp takes listen, max_connections, idle_timeout)"
+                ),
             ));
         }
         let source = match kind {
             "stdin" => {
                 if sources.contains(&SourceConfig::Stdin) {
-                    return Err(invalid(key("kind"), "standard input can be read by only one source"));
+                    return Err(invalid(
+                        key("kind"),
+                        "standard input can be read by only one source",
+                    ));
                 }
                 SourceConfig::Stdin
             }
@@ -1678,25 +2002,45 @@ fn resolve_sources(raw: Vec<RawSource>) -> Result<Vec<SourceConfig>, ConfigError
                 if path.is_empty() {
                     return Err(missing(key("path"), "a file source needs path = \"...\""));
                 }
-                SourceConfig::File { path: PathBuf::from(path) }
+                SourceConfig::File {
+                    path: PathBuf::from(path),
+                }
             }
             _ => {
                 let listen_text = src.listen.ok_or_else(|| {
-                    missing(key("listen"), "a tcp source needs listen = \"IP:PORT\", e.g. \"127.0.0.1:9651\"")
+                    missing(
+                        key("listen"),
+                        "a tcp source needs listen = \"IP:PORT\", e.g. \"127.0.0.1:9651\"",
+                    )
                 })?;
                 let listen = socket_addr(&listen_text, &key("listen"))?;
-                if sources.iter().any(|s| matches!(s, SourceConfig::Tcp { listen: other, .. } if *other == listen)) {
-                    return Err(invalid(key("listen"), format!("{listen} is already used by another tcp source")));
+                if sources.iter().any(
+                    |s| matches!(s, SourceConfig::Tcp { listen: other, .. } if *other == listen),
+                ) {
+                    return Err(invalid(
+                        key("listen"),
+                        format!("{listen} is already used by another tcp source"),
+                    ));
                 }
                 let max_connections = match src.max_connections {
                     None => DEFAULT_MAX_CONNECTIONS,
                     Some(n) => match usize::try_from(n) {
                         Ok(n) if n >= 1 => n,
-                        _ => return Err(invalid(key("max_connections"), format!("{n} is not allowed: at least 1"))),
+                        _ => {
+                            return Err(invalid(
+                                key("max_connections"),
+                                format!("{n} is not allowed: at least 1"),
+                            ));
+                        }
                     },
                 };
-                let idle_timeout = duration_at_least(src.idle_timeout, &key("idle_timeout"), "5m", ONE_SECOND)?;
-                SourceConfig::Tcp { listen, max_connections, idle_timeout }
+                let idle_timeout =
+                    duration_at_least(src.idle_timeout, &key("idle_timeout"), "5m", ONE_SECOND)?;
+                SourceConfig::Tcp {
+                    listen,
+                    max_connections,
+                    idle_timeout,
+                }
             }
         };
         sources.push(source);
@@ -1713,14 +2057,20 @@ fn socket_addr(text: &str, key: &str) -> Result<SocketAddr, ConfigError> {
 }
 
 fn resolve_http(raw: RawHttp) -> Result<HttpConfig, ConfigError> {
-    let listen = socket_addr(raw.listen.as_deref().unwrap_or("127.0.0.1:9650"), "http.listen")?;
+    let listen = socket_addr(
+        raw.listen.as_deref().unwrap_or("127.0.0.1:9650"),
+        "http.listen",
+    )?;
     Ok(HttpConfig { listen })
 }
 
 fn resolve_dir(value: Option<String>, key: &str, default: &str) -> Result<PathBuf, ConfigError> {
     let dir = value.unwrap_or_else(|| default.to_string());
     if dir.is_empty() {
-        return Err(invalid(key, format!("must not be empty: give a directory (default \"{default}\")")));
+        return Err(invalid(
+            key,
+            format!("must not be empty: give a directory (default \"{default}\")"),
+        ));
     }
     Ok(PathBuf::from(dir))
 }
@@ -1753,6 +2103,10 @@ impl FingerprintWriter {
     fn int(&mut self, tag: &str, value: i64) {
         self.bytes(tag, &value.to_le_bytes());
     }
+    /// Lengths and sizes; usize is at most 64 bits on every supported target.
+    fn count(&mut self, tag: &str, value: usize) {
+        self.bytes(tag, &(value as u64).to_le_bytes());
+    }
 }
 
 impl Config {
@@ -1762,9 +2116,19 @@ impl Config {
         let mut numbers: Vec<String> = Vec::new();
         for stat in &self.stats {
             for group in &stat.group_by {
-                // Stage 2 guarantees equal key lists for a shared field, so the first wins.
-                if !categories.iter().any(|(field, _)| *field == group.field) {
-                    categories.push((group.field.clone(), group.keys.clone()));
+                match categories
+                    .iter_mut()
+                    .find(|(field, _)| *field == group.field)
+                {
+                    // A field shared by several stats: the union, in order of first mention.
+                    Some((_, domain)) => {
+                        for key in &group.keys {
+                            if !domain.contains(key) {
+                                domain.push(key.clone());
+                            }
+                        }
+                    }
+                    None => categories.push((group.field.clone(), group.keys.clone())),
                 }
             }
             for field in number_fields(stat) {
@@ -1782,13 +2146,17 @@ impl Config {
         }
     }
 
-    /// A stable hash (blake3, hex) of everything that affects the privacy guarantee: the input
-    /// fields, the window length, the whole privacy section and every stat (name, kind, fields,
-    /// ranges, bounds, fit, group keys, weight, trailing), in order.
+    /// A stable hash (blake3, hex) of everything that affects the privacy guarantee: the
+    /// `[input]` section, the window length, the whole privacy section and every stat (name,
+    /// kind, fields, ranges, bounds, fit, group keys, weight, trailing), in order. State saved
+    /// under one fingerprint must not be resumed under another.
     ///
-    /// Left out on purpose, because changing them cannot change what a release reveals:
-    /// sources, http, output, state, `idle_close`, `allowed_lateness` (it decides which events
-    /// arrive in time, not how much one unit can contribute) and `max_line_bytes`.
+    /// `allowed_lateness` and `max_line_bytes` are in as well: they do not change one unit's
+    /// sensitivity, but they decide which events are accepted, so a log of input lines replayed
+    /// under other values could derive releases that differ from those already published.
+    ///
+    /// Left out, because only `run` uses them and they cannot change what a release reveals
+    /// (contract.md, "Config"): sources, http, output, state and `idle_close`.
     pub fn fingerprint(&self) -> String {
         let mut w = FingerprintWriter(blake3::Hasher::new());
         w.text("domain", FINGERPRINT_DOMAIN);
@@ -1797,7 +2165,9 @@ impl Config {
             Some(unit) => w.text("input.unit_field", unit),
             None => w.text("input.unit_field.none", ""),
         }
+        w.count("input.max_line_bytes", self.input.max_line_bytes);
         w.int("window.length", self.window.length.0);
+        w.int("window.allowed_lateness", self.window.allowed_lateness.0);
         let p = &self.privacy;
         w.float("privacy.rho_per_epoch", p.rho_per_epoch);
         w.float("privacy.delta", p.delta);
@@ -1805,10 +2175,16 @@ impl Config {
         w.text("privacy.mechanism", p.mechanism.label());
         if let Some(b) = &p.unit_bounds {
             w.float("privacy.lifetime_rho", b.lifetime_rho);
-            w.int("privacy.max_events_per_window", i64::from(b.max_events_per_window));
-            w.int("privacy.max_windows_per_epoch", i64::from(b.max_windows_per_epoch));
+            w.int(
+                "privacy.max_events_per_window",
+                i64::from(b.max_events_per_window),
+            );
+            w.int(
+                "privacy.max_windows_per_epoch",
+                i64::from(b.max_windows_per_epoch),
+            );
         }
-        w.int("stats.len", self.stats.len() as i64);
+        w.count("stats.len", self.stats.len());
         for stat in &self.stats {
             w.text("stat.name", &stat.name);
             w.text("stat.kind", stat.kind.label());
@@ -1821,12 +2197,18 @@ impl Config {
                 }
                 StatKind::Linear(lin) => {
                     w.text("stat.target", &lin.target);
-                    w.int("stat.features.len", lin.features.len() as i64);
+                    w.count("stat.features.len", lin.features.len());
                     for feature in &lin.features {
                         w.text("stat.feature", feature);
                     }
                     w.int("stat.intercept", i64::from(lin.intercept));
                     w.float("stat.feature_norm_bound", lin.feature_norm_bound);
+                    if let Some(b) = &lin.feature_bounds {
+                        w.count("stat.feature_bounds.len", b.len());
+                        for v in b {
+                            w.float("stat.feature_bound", *v);
+                        }
+                    }
                     w.float("stat.target_bound", lin.target_bound);
                     match lin.fit {
                         FitConfig::Ridge { lambda } => w.float("stat.fit.ridge", lambda),
@@ -1834,16 +2216,16 @@ impl Config {
                     }
                 }
             }
-            w.int("stat.group_by.len", stat.group_by.len() as i64);
+            w.count("stat.group_by.len", stat.group_by.len());
             for group in &stat.group_by {
                 w.text("stat.group.field", &group.field);
-                w.int("stat.group.keys.len", group.keys.len() as i64);
+                w.count("stat.group.keys.len", group.keys.len());
                 for key in &group.keys {
                     w.text("stat.group.key", key);
                 }
             }
             w.float("stat.weight", stat.weight);
-            w.int("stat.trailing.len", stat.trailing.len() as i64);
+            w.count("stat.trailing.len", stat.trailing.len());
             for &t in &stat.trailing {
                 w.int("stat.trailing", i64::from(t));
             }
@@ -1863,8 +2245,18 @@ mod tests {
         assert_eq!(declared_keys::<RawState>(), &["dir", "checkpoint_interval"]);
         assert_eq!(
             declared_keys::<RawConfig>(),
-            &["input", "window", "privacy", "stats", "sources", "http", "output", "state"]
+            &[
+                "input", "window", "privacy", "stats", "sources", "http", "output", "state"
+            ]
         );
+    }
+
+    #[test]
+    fn dotted_restores_the_dot_after_an_index() {
+        assert_eq!(dotted("stats[0]group_by"), "stats[0].group_by");
+        assert_eq!(dotted("stats[1]range[0]"), "stats[1].range[0]");
+        assert_eq!(dotted("stats[1].keys.zone[2]"), "stats[1].keys.zone[2]");
+        assert_eq!(dotted("privacy.delta"), "privacy.delta");
     }
 
     #[test]
@@ -1880,9 +2272,18 @@ mod tests {
         .map(|(k, v)| (k.to_string(), v.to_string()))
         .collect();
         let o = EnvOverrides::new(&env).unwrap();
-        assert_eq!(o.variable_for("privacy.rho_per_epoch").as_deref(), Some("SCRIM_PRIVACY__RHO_PER_EPOCH"));
-        assert_eq!(o.variable_for("privacy").as_deref(), Some("SCRIM_PRIVACY__RHO_PER_EPOCH"));
-        assert_eq!(o.variable_for("window.length").as_deref(), Some("scrim_window__length"));
+        assert_eq!(
+            o.variable_for("privacy.rho_per_epoch").as_deref(),
+            Some("SCRIM_PRIVACY__RHO_PER_EPOCH")
+        );
+        assert_eq!(
+            o.variable_for("privacy").as_deref(),
+            Some("SCRIM_PRIVACY__RHO_PER_EPOCH")
+        );
+        assert_eq!(
+            o.variable_for("window.length").as_deref(),
+            Some("scrim_window__length")
+        );
         assert_eq!(o.variable_for("priv"), None);
         assert_eq!(o.by_path.len(), 2);
     }

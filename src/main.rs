@@ -9,7 +9,11 @@ use clap::{Parser, Subcommand};
 use scrim::app::{self, AppError, KeySource};
 
 #[derive(Parser)]
-#[command(name = "scrim", version, about = "Differentially private continual releases from event feeds")]
+#[command(
+    name = "scrim",
+    version,
+    about = "Differentially private continual releases from event feeds"
+)]
 struct Cli {
     #[command(subcommand)]
     command: Command,
@@ -86,8 +90,19 @@ fn key_source(seed: Option<u64>) -> KeySource {
 
 fn run(cli: Cli) -> Result<(), AppError> {
     match cli.command {
-        Command::Demo { seed, out, days, serve, listen } => {
-            let args = app::DemoArgs { key: key_source(seed), out, days, serve: serve.then_some(listen) };
+        Command::Demo {
+            seed,
+            out,
+            days,
+            serve,
+            listen,
+        } => {
+            let args = app::DemoArgs {
+                key: key_source(seed),
+                out,
+                days,
+                serve: serve.then_some(listen),
+            };
             app::demo(&args, &mut std::io::stdout().lock())?;
             Ok(())
         }
@@ -113,7 +128,11 @@ fn run(cli: Cli) -> Result<(), AppError> {
                 None => Ok(()),
             }
         }
-        Command::Run { config, seed, insecure_seed } => {
+        Command::Run {
+            config,
+            seed,
+            insecure_seed,
+        } => {
             let key = match (seed, insecure_seed) {
                 (Some(_), false) => {
                     return Err(AppError::Usage(
@@ -121,7 +140,9 @@ fn run(cli: Cli) -> Result<(), AppError> {
                     ));
                 }
                 (Some(s), true) => {
-                    eprintln!("scrim: WARNING: --insecure-seed: noise is reproducible and releases are NOT private");
+                    eprintln!(
+                        "scrim: WARNING: --insecure-seed: noise is reproducible and releases are NOT private"
+                    );
                     KeySource::Seed(s)
                 }
                 (None, _) => KeySource::Os,
@@ -136,7 +157,9 @@ fn run(cli: Cli) -> Result<(), AppError> {
             if fits {
                 Ok(())
             } else {
-                Err(AppError::Budget("the lifetime budget cannot cover one epoch".to_string()))
+                Err(AppError::Budget(
+                    "the lifetime budget cannot cover one epoch".to_string(),
+                ))
             }
         }
     }
@@ -151,9 +174,12 @@ fn main() -> ExitCode {
             return ExitCode::from(code);
         }
     };
-    tracing_subscriber::fmt().with_writer(std::io::stderr).with_env_filter(
-        tracing_subscriber::EnvFilter::try_from_default_env().unwrap_or_else(|_| "warn".into()),
-    ).init();
+    tracing_subscriber::fmt()
+        .with_writer(std::io::stderr)
+        .with_env_filter(
+            tracing_subscriber::EnvFilter::try_from_default_env().unwrap_or_else(|_| "warn".into()),
+        )
+        .init();
     match run(cli) {
         Ok(()) => ExitCode::SUCCESS,
         Err(e) => {

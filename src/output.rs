@@ -27,7 +27,10 @@ impl JsonlSink {
         std::fs::create_dir_all(dir)?;
         let path = dir.join("releases.jsonl");
         let file = OpenOptions::new().create(true).append(true).open(&path)?;
-        Ok(JsonlSink { path, out: BufWriter::new(file) })
+        Ok(JsonlSink {
+            path,
+            out: BufWriter::new(file),
+        })
     }
 
     /// Creates `dir/releases.jsonl` anew, truncating an old one.
@@ -35,7 +38,10 @@ impl JsonlSink {
         std::fs::create_dir_all(dir)?;
         let path = dir.join("releases.jsonl");
         let file = File::create(&path)?;
-        Ok(JsonlSink { path, out: BufWriter::new(file) })
+        Ok(JsonlSink {
+            path,
+            out: BufWriter::new(file),
+        })
     }
 
     /// The file written.

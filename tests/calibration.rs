@@ -15,11 +15,7 @@ use scrim::engine::release::Release;
 use scrim::engine::{Engine, EngineOptions};
 
 fn config(mechanism: &str, unit: bool) -> Config {
-    let unit_part = if unit {
-        "unit_field = \"card\"\n"
-    } else {
-        ""
-    };
+    let unit_part = if unit { "unit_field = \"card\"\n" } else { "" };
     let bounds = if unit {
         "lifetime_rho = 100.0\nmax_events_per_window = 2\nmax_windows_per_epoch = 8\n"
     } else {
@@ -85,8 +81,15 @@ fn feed(n_windows: i64) -> Vec<String> {
 }
 
 fn run(cfg: &Config, seed: u64, lines: &[String]) -> Vec<Release> {
-    let mut engine = Engine::new(cfg, NoiseKey::from_seed(seed), EngineOptions { seeded: true, danger_keep_truth: true })
-        .expect("engine builds");
+    let mut engine = Engine::new(
+        cfg,
+        NoiseKey::from_seed(seed),
+        EngineOptions {
+            seeded: true,
+            danger_keep_truth: true,
+        },
+    )
+    .expect("engine builds");
     let mut out = Vec::new();
     for l in lines {
         engine.handle_line(l.as_bytes());
@@ -121,8 +124,14 @@ fn assert_standard_normal(z: &[f64], what: &str) {
     let var = z.iter().map(|x| (x - mean).powi(2)).sum::<f64>() / (n - 1.0);
     let mean_tol = 4.0 / n.sqrt();
     let var_tol = 4.0 * (2.0 / n).sqrt();
-    assert!(mean.abs() < mean_tol, "{what}: mean z {mean:.4} outside ±{mean_tol:.4} (n = {n})");
-    assert!((var - 1.0).abs() < var_tol, "{what}: var z {var:.4} outside 1 ± {var_tol:.4} (n = {n})");
+    assert!(
+        mean.abs() < mean_tol,
+        "{what}: mean z {mean:.4} outside ±{mean_tol:.4} (n = {n})"
+    );
+    assert!(
+        (var - 1.0).abs() < var_tol,
+        "{what}: var z {var:.4} outside 1 ± {var_tol:.4} (n = {n})"
+    );
 }
 
 /// One z per run and series for the last window, so samples are independent across runs
@@ -136,8 +145,13 @@ fn calibrate(mechanism: &str, unit: bool) {
         let last_leaf = recs.iter().map(|r| r.leaf).max().expect("releases");
         for kind in ["count", "sum"] {
             for scope in ["window", "epoch_to_date", "trailing:4"] {
-                let z = z_scores(&recs, |r| r.kind == kind && r.scope == scope && r.leaf == last_leaf);
-                by_scope.entry((kind.to_string(), scope.to_string())).or_default().extend(z);
+                let z = z_scores(&recs, |r| {
+                    r.kind == kind && r.scope == scope && r.leaf == last_leaf
+                });
+                by_scope
+                    .entry((kind.to_string(), scope.to_string()))
+                    .or_default()
+                    .extend(z);
             }
         }
     }
@@ -158,7 +172,9 @@ fn independent_noise_is_calibrated_at_event_level() {
     let mut z = Vec::new();
     for seed in 0..10u64 {
         let recs = run(&cfg, seed, &lines);
-        z.extend(z_scores(&recs, |r| r.scope == "window" && (r.kind == "count" || r.kind == "sum")));
+        z.extend(z_scores(&recs, |r| {
+            r.scope == "window" && (r.kind == "count" || r.kind == "sum")
+        }));
     }
     assert_standard_normal(&z, "independent window");
 }
@@ -190,7 +206,9 @@ fn mean_error_bars_are_roughly_honest() {
     for seed in 0..600u64 {
         let recs = run(&cfg, 5_000 + seed, &lines);
         let last = recs.iter().map(|r| r.leaf).max().unwrap_or(0);
-        for z in z_scores(&recs, |r| r.kind == "mean" && r.scope == "epoch_to_date" && r.leaf == last) {
+        for z in z_scores(&recs, |r| {
+            r.kind == "mean" && r.scope == "epoch_to_date" && r.leaf == last
+        }) {
             n += 1;
             if z.abs() <= 2.0 {
                 inside += 1;

@@ -23,8 +23,10 @@ fn read_records(path: &Path) -> Vec<serde_json::Value> {
 }
 
 fn schema() -> serde_json::Value {
-    let text = std::fs::read_to_string(Path::new(env!("CARGO_MANIFEST_DIR")).join("ops/release.schema.json"))
-        .expect("ops/release.schema.json ships with the repository");
+    let text = std::fs::read_to_string(
+        Path::new(env!("CARGO_MANIFEST_DIR")).join("ops/release.schema.json"),
+    )
+    .expect("ops/release.schema.json ships with the repository");
     serde_json::from_str(&text).expect("the schema is JSON")
 }
 
@@ -60,11 +62,28 @@ fn small_feed(hours: i64) -> String {
 #[test]
 fn demo_runs_end_to_end_and_its_records_match_the_schema() {
     let dir = tempfile::tempdir().unwrap();
-    let out = scrim(&["demo", "--seed", "7", "--days", "2", "--out", "demo-out"], dir.path());
+    let out = scrim(
+        &["demo", "--seed", "7", "--days", "2", "--out", "demo-out"],
+        dir.path(),
+    );
     let stdout = String::from_utf8_lossy(&out.stdout);
-    assert!(out.status.success(), "demo failed: {}\n{}", stdout, String::from_utf8_lossy(&out.stderr));
-    for needle in ["Released vs true", "rejected", "Budget", "releases.jsonl", "dropped by contribution bounds"] {
-        assert!(stdout.contains(needle), "summary lacks {needle:?}:\n{stdout}");
+    assert!(
+        out.status.success(),
+        "demo failed: {}\n{}",
+        stdout,
+        String::from_utf8_lossy(&out.stderr)
+    );
+    for needle in [
+        "Released vs true",
+        "rejected",
+        "Budget",
+        "releases.jsonl",
+        "dropped by contribution bounds",
+    ] {
+        assert!(
+            stdout.contains(needle),
+            "summary lacks {needle:?}:\n{stdout}"
+        );
     }
     let recs = read_records(&dir.path().join("demo-out/releases.jsonl"));
     assert!(recs.len() > 100, "only {} records", recs.len());
@@ -108,11 +127,19 @@ fn replay_is_reproducible_with_a_seed_and_fresh_without() {
 #[test]
 fn bad_config_exits_2_and_names_the_key() {
     let dir = tempfile::tempdir().unwrap();
-    std::fs::write(dir.path().join("c.toml"), SMALL_CONFIG.replace("rho_per_epoch = 0.5", "rho_per_epoch = -1")).unwrap();
+    std::fs::write(
+        dir.path().join("c.toml"),
+        SMALL_CONFIG.replace("rho_per_epoch = 0.5", "rho_per_epoch = -1"),
+    )
+    .unwrap();
     std::fs::write(dir.path().join("in.jsonl"), small_feed(1)).unwrap();
     let o = scrim(&["replay", "--config", "c.toml", "in.jsonl"], dir.path());
     assert_eq!(o.status.code(), Some(2));
-    assert!(String::from_utf8_lossy(&o.stderr).contains("rho_per_epoch"), "{}", String::from_utf8_lossy(&o.stderr));
+    assert!(
+        String::from_utf8_lossy(&o.stderr).contains("rho_per_epoch"),
+        "{}",
+        String::from_utf8_lossy(&o.stderr)
+    );
     let o = scrim(&["plan", "--config", "missing.toml"], dir.path());
     assert_eq!(o.status.code(), Some(2));
     let o = scrim(&["replay", "--bogus"], dir.path());
@@ -132,11 +159,24 @@ fn replay_fails_closed_with_exit_3_when_the_lifetime_budget_runs_out() {
     std::fs::write(dir.path().join("c.toml"), cfg).unwrap();
     let feed = small_feed(6).replace("{\"ts\"", "{\"card\":\"c-1\",\"ts\"");
     std::fs::write(dir.path().join("in.jsonl"), feed).unwrap();
-    let o = scrim(&["replay", "--config", "c.toml", "--out", "o", "--seed", "1", "in.jsonl"], dir.path());
-    assert_eq!(o.status.code(), Some(3), "{}", String::from_utf8_lossy(&o.stderr));
+    let o = scrim(
+        &[
+            "replay", "--config", "c.toml", "--out", "o", "--seed", "1", "in.jsonl",
+        ],
+        dir.path(),
+    );
+    assert_eq!(
+        o.status.code(),
+        Some(3),
+        "{}",
+        String::from_utf8_lossy(&o.stderr)
+    );
     assert!(String::from_utf8_lossy(&o.stderr).contains("lifetime"));
     let recs = read_records(&dir.path().join("o/releases.jsonl"));
-    assert!(recs.iter().all(|r| r["epoch"] == 0), "nothing from the unpaid epoch is released");
+    assert!(
+        recs.iter().all(|r| r["epoch"] == 0),
+        "nothing from the unpaid epoch is released"
+    );
     assert_eq!(recs.iter().filter(|r| r["scope"] == "window").count(), 4);
 }
 
@@ -144,11 +184,20 @@ fn replay_fails_closed_with_exit_3_when_the_lifetime_budget_runs_out() {
 fn plan_prints_the_budget_and_json_parses() {
     let dir = tempfile::tempdir().unwrap();
     let demo_cfg = Path::new(env!("CARGO_MANIFEST_DIR")).join("config/demo.toml");
-    let o = scrim(&["plan", "--config", demo_cfg.to_str().unwrap()], dir.path());
+    let o = scrim(
+        &["plan", "--config", demo_cfg.to_str().unwrap()],
+        dir.path(),
+    );
     assert!(o.status.success(), "{}", String::from_utf8_lossy(&o.stderr));
     let text = String::from_utf8_lossy(&o.stdout);
-    assert!(text.contains("epsilon") && text.contains("taps_by_zone"), "{text}");
-    let o = scrim(&["plan", "--json", "--config", demo_cfg.to_str().unwrap()], dir.path());
+    assert!(
+        text.contains("epsilon") && text.contains("taps_by_zone"),
+        "{text}"
+    );
+    let o = scrim(
+        &["plan", "--json", "--config", demo_cfg.to_str().unwrap()],
+        dir.path(),
+    );
     assert!(o.status.success());
     let v: serde_json::Value = serde_json::from_slice(&o.stdout).expect("plan --json is JSON");
     assert!(v["epsilon_per_epoch"].as_f64().unwrap() > 0.0);

@@ -8,7 +8,10 @@ use std::time::Duration;
 
 fn scrim(dir: &Path, args: &[&str]) -> Command {
     let mut c = Command::new(env!("CARGO_BIN_EXE_scrim"));
-    c.args(args).current_dir(dir).stdout(Stdio::null()).stderr(Stdio::piped());
+    c.args(args)
+        .current_dir(dir)
+        .stdout(Stdio::null())
+        .stderr(Stdio::piped());
     c
 }
 
@@ -27,24 +30,58 @@ fn crash_and_compare(kills: usize) {
     let dir = tempfile::tempdir().unwrap();
     let d = dir.path();
     // Input: the demo generator's feed (invented data), 2 days.
-    let o = scrim(d, &["demo", "--seed", "3", "--days", "2", "--out", "demo"]).output().unwrap();
+    let o = scrim(d, &["demo", "--seed", "3", "--days", "2", "--out", "demo"])
+        .output()
+        .unwrap();
     assert!(o.status.success(), "{}", String::from_utf8_lossy(&o.stderr));
     let cfg = Path::new(env!("CARGO_MANIFEST_DIR")).join("config/demo.toml");
     let cfg = cfg.to_str().unwrap();
 
-    let clean = scrim(d, &["replay", "--config", cfg, "--seed", "9", "--state", "s1", "--out", "o1", "demo/feed.jsonl"])
-        .output()
-        .unwrap();
-    assert!(clean.status.success(), "{}", String::from_utf8_lossy(&clean.stderr));
+    let clean = scrim(
+        d,
+        &[
+            "replay",
+            "--config",
+            cfg,
+            "--seed",
+            "9",
+            "--state",
+            "s1",
+            "--out",
+            "o1",
+            "demo/feed.jsonl",
+        ],
+    )
+    .output()
+    .unwrap();
+    assert!(
+        clean.status.success(),
+        "{}",
+        String::from_utf8_lossy(&clean.stderr)
+    );
     let expected = std::fs::read_to_string(d.join("o1/releases.jsonl")).unwrap();
     assert!(expected.lines().count() > 100);
 
     let mut delays = Delays(0x5eed_1234_abcd_0001);
     let mut killed = 0;
     for _ in 0..kills {
-        let mut child = scrim(d, &["replay", "--config", cfg, "--seed", "9", "--state", "s2", "--out", "o2", "demo/feed.jsonl"])
-            .spawn()
-            .unwrap();
+        let mut child = scrim(
+            d,
+            &[
+                "replay",
+                "--config",
+                cfg,
+                "--seed",
+                "9",
+                "--state",
+                "s2",
+                "--out",
+                "o2",
+                "demo/feed.jsonl",
+            ],
+        )
+        .spawn()
+        .unwrap();
         std::thread::sleep(Duration::from_millis(delays.next_ms(5, 400)));
         if child.try_wait().unwrap().is_none() {
             child.kill().unwrap(); // SIGKILL
@@ -52,21 +89,50 @@ fn crash_and_compare(kills: usize) {
         }
         let _ = child.wait();
     }
-    let last = scrim(d, &["replay", "--config", cfg, "--seed", "9", "--state", "s2", "--out", "o2", "demo/feed.jsonl"])
-        .output()
-        .unwrap();
-    assert!(last.status.success(), "{}", String::from_utf8_lossy(&last.stderr));
+    let last = scrim(
+        d,
+        &[
+            "replay",
+            "--config",
+            cfg,
+            "--seed",
+            "9",
+            "--state",
+            "s2",
+            "--out",
+            "o2",
+            "demo/feed.jsonl",
+        ],
+    )
+    .output()
+    .unwrap();
+    assert!(
+        last.status.success(),
+        "{}",
+        String::from_utf8_lossy(&last.stderr)
+    );
     let got = std::fs::read_to_string(d.join("o2/releases.jsonl")).unwrap();
-    assert!(killed >= kills / 2, "only {killed} of {kills} runs were still running when killed");
+    assert!(
+        killed >= kills / 2,
+        "only {killed} of {kills} runs were still running when killed"
+    );
     if got != expected {
         let (g, e): (Vec<_>, Vec<_>) = (got.lines().collect(), expected.lines().collect());
         let first = g.iter().zip(&e).position(|(a, b)| a != b);
-        panic!("releases differ after {killed} kills: {} vs {} lines, first difference at line {first:?}", g.len(), e.len());
+        panic!(
+            "releases differ after {killed} kills: {} vs {} lines, first difference at line {first:?}",
+            g.len(),
+            e.len()
+        );
     }
     // Every epoch in the output was paid for: the demo's lifetime covers 4 epochs.
     let max_epoch = got
         .lines()
-        .map(|l| serde_json::from_str::<serde_json::Value>(l).unwrap()["epoch"].as_u64().unwrap())
+        .map(|l| {
+            serde_json::from_str::<serde_json::Value>(l).unwrap()["epoch"]
+                .as_u64()
+                .unwrap()
+        })
         .max()
         .unwrap();
     assert!(max_epoch < 4);

@@ -23,7 +23,10 @@ impl Drop for Daemon {
 
 fn config(dir: &Path, with_file: bool) -> String {
     let file = if with_file {
-        format!("\n[[sources]]\nkind = \"file\"\npath = \"{}\"\n", dir.join("feed.jsonl").display())
+        format!(
+            "\n[[sources]]\nkind = \"file\"\npath = \"{}\"\n",
+            dir.join("feed.jsonl").display()
+        )
     } else {
         String::new()
     };
@@ -99,20 +102,42 @@ fn start(dir: &Path, cfg: &str, env: &[(&str, &str)]) -> Daemon {
         }
     }
     std::thread::spawn(move || while rx.recv().is_ok() {});
-    Daemon { child, http: http.expect("http address printed"), tcp: tcp.expect("tcp address printed") }
+    Daemon {
+        child,
+        http: http.expect("http address printed"),
+        tcp: tcp.expect("tcp address printed"),
+    }
 }
 
 fn get(addr: &str, path: &str) -> (u16, String) {
     let mut s = TcpStream::connect(addr).expect("connect http");
     s.set_read_timeout(Some(Duration::from_secs(10))).unwrap();
-    write!(s, "GET {path} HTTP/1.1\r\nHost: {addr}\r\nConnection: close\r\n\r\n").unwrap();
+    write!(
+        s,
+        "GET {path} HTTP/1.1\r\nHost: {addr}\r\nConnection: close\r\n\r\n"
+    )
+    .unwrap();
     let mut buf = Vec::new();
     s.read_to_end(&mut buf).unwrap();
     let text = String::from_utf8_lossy(&buf).into_owned();
-    let status = text.split_whitespace().nth(1).and_then(|c| c.parse().ok()).unwrap_or(0);
-    let body = text.split_once("\r\n\r\n").map(|(_, b)| b.to_string()).unwrap_or_default();
+    let status = text
+        .split_whitespace()
+        .nth(1)
+        .and_then(|c| c.parse().ok())
+        .unwrap_or(0);
+    let body = text
+        .split_once("\r\n\r\n")
+        .map(|(_, b)| b.to_string())
+        .unwrap_or_default();
     // Chunked bodies: keep it simple by stripping chunk-size lines when present.
-    let body = if text.to_ascii_lowercase().contains("transfer-encoding: chunked") { dechunk(&body) } else { body };
+    let body = if text
+        .to_ascii_lowercase()
+        .contains("transfer-encoding: chunked")
+    {
+        dechunk(&body)
+    } else {
+        body
+    };
     (status, body)
 }
 
@@ -125,7 +150,7 @@ fn dechunk(body: &str) -> String {
             break;
         }
         out.push_str(&tail[..n]);
-        rest = &tail[n..].trim_start_matches("\r\n");
+        rest = tail[n..].trim_start_matches("\r\n");
     }
     out
 }
@@ -139,7 +164,10 @@ fn metric(text: &str, name: &str) -> f64 {
 }
 
 fn now_ms() -> i64 {
-    std::time::SystemTime::now().duration_since(std::time::UNIX_EPOCH).unwrap().as_millis() as i64
+    std::time::SystemTime::now()
+        .duration_since(std::time::UNIX_EPOCH)
+        .unwrap()
+        .as_millis() as i64
 }
 
 fn wait_until(mut f: impl FnMut() -> bool, secs: u64, what: &str) {
@@ -163,11 +191,17 @@ fn live_daemon_ingests_releases_and_counts_everything() {
     let mut sent = 0u64;
     let mut bad = 0u64;
     // Three TCP connections, good and bad lines.
-    let mut conns: Vec<TcpStream> = (0..3).map(|_| TcpStream::connect(&d.tcp).unwrap()).collect();
+    let mut conns: Vec<TcpStream> = (0..3)
+        .map(|_| TcpStream::connect(&d.tcp).unwrap())
+        .collect();
     for round in 0..3 {
         for (i, c) in conns.iter_mut().enumerate() {
             for j in 0..20 {
-                let zone = if (i + j) % 2 == 0 { "harbour" } else { "uplands" };
+                let zone = if (i + j) % 2 == 0 {
+                    "harbour"
+                } else {
+                    "uplands"
+                };
                 writeln!(c, "{{\"ts\":{},\"zone\":\"{zone}\"}}", now_ms()).unwrap();
                 sent += 1;
             }
@@ -177,7 +211,10 @@ fn live_daemon_ingests_releases_and_counts_everything() {
             bad += 2;
         }
         // And the file source.
-        let mut f = std::fs::OpenOptions::new().append(true).open(dir.path().join("feed.jsonl")).unwrap();
+        let mut f = std::fs::OpenOptions::new()
+            .append(true)
+            .open(dir.path().join("feed.jsonl"))
+            .unwrap();
         for _ in 0..10 {
             writeln!(f, "{{\"ts\":{},\"zone\":\"harbour\"}}", now_ms()).unwrap();
             sent += 1;
@@ -194,17 +231,33 @@ fn live_daemon_ingests_releases_and_counts_everything() {
             + metric(m, "scrim_events_total{outcome=\"rejected\"}")
             + metric(m, "scrim_events_total{outcome=\"late\"}")
     };
-    wait_until(|| total(&get(&d.http, "/metrics").1) == sent as f64, 30, "all events counted");
+    wait_until(
+        || total(&get(&d.http, "/metrics").1) == sent as f64,
+        30,
+        "all events counted",
+    );
     let m = get(&d.http, "/metrics").1;
-    assert_eq!(metric(&m, "scrim_events_total{outcome=\"rejected\"}"), bad as f64, "{m}");
-    assert!(m.contains("scrim_rejected_events_total{reason=\"unknown_category\"} 9"), "{m}");
-    assert!(m.contains("scrim_rejected_events_total{reason=\"invalid_json\"} 9"), "{m}");
+    assert_eq!(
+        metric(&m, "scrim_events_total{outcome=\"rejected\"}"),
+        bad as f64,
+        "{m}"
+    );
+    assert!(
+        m.contains("scrim_rejected_events_total{reason=\"unknown_category\"} 9"),
+        "{m}"
+    );
+    assert!(
+        m.contains("scrim_rejected_events_total{reason=\"invalid_json\"} 9"),
+        "{m}"
+    );
 
     // Releases appear once windows close (watermark or idle_close), pulled with a cursor.
     wait_until(
         || {
             let (_, body) = get(&d.http, "/v1/releases?limit=1000");
-            serde_json::from_str::<serde_json::Value>(&body).map(|v| v["releases"].as_array().map_or(0, Vec::len) >= 8).unwrap_or(false)
+            serde_json::from_str::<serde_json::Value>(&body)
+                .map(|v| v["releases"].as_array().map_or(0, Vec::len) >= 8)
+                .unwrap_or(false)
         },
         30,
         "releases",
@@ -229,14 +282,20 @@ fn live_daemon_ingests_releases_and_counts_everything() {
 
     // SIGTERM: drains and exits 0.
     let pid = d.child.id();
-    Command::new("kill").args(["-TERM", &pid.to_string()]).status().unwrap();
+    Command::new("kill")
+        .args(["-TERM", &pid.to_string()])
+        .status()
+        .unwrap();
     let mut d = d;
     let deadline = Instant::now() + Duration::from_secs(20);
     let status = loop {
         if let Some(s) = d.child.try_wait().unwrap() {
             break s;
         }
-        assert!(Instant::now() < deadline, "daemon did not stop after SIGTERM");
+        assert!(
+            Instant::now() < deadline,
+            "daemon did not stop after SIGTERM"
+        );
         std::thread::sleep(Duration::from_millis(50));
     };
     assert!(status.success(), "exit status {status}");
@@ -255,17 +314,31 @@ fn restart_resumes_from_state_without_losing_or_duplicating() {
         wait_until(|| get(&d.http, "/readyz").0 == 200, 20, "readyz");
         let mut c = TcpStream::connect(&d.tcp).unwrap();
         for i in 0..500 {
-            writeln!(c, "{{\"ts\":{},\"zone\":\"{}\"}}", now_ms(), if i % 2 == 0 { "harbour" } else { "uplands" }).unwrap();
+            writeln!(
+                c,
+                "{{\"ts\":{},\"zone\":\"{}\"}}",
+                now_ms(),
+                if i % 2 == 0 { "harbour" } else { "uplands" }
+            )
+            .unwrap();
         }
         c.flush().unwrap();
         wait_until(
-            || metric(&get(&d.http, "/metrics").1, "scrim_events_total{outcome=\"accepted\"}") == 500.0,
+            || {
+                metric(
+                    &get(&d.http, "/metrics").1,
+                    "scrim_events_total{outcome=\"accepted\"}",
+                ) == 500.0
+            },
             20,
             "accepted",
         );
         accepted_before = 500.0;
         // SIGTERM while windows are still open.
-        Command::new("kill").args(["-TERM", &d.child.id().to_string()]).status().unwrap();
+        Command::new("kill")
+            .args(["-TERM", &d.child.id().to_string()])
+            .status()
+            .unwrap();
         let mut d = d;
         let s = d.child.wait().unwrap();
         assert!(s.success());
@@ -274,11 +347,21 @@ fn restart_resumes_from_state_without_losing_or_duplicating() {
     let d = start(dir.path(), &cfg, &[]);
     wait_until(|| get(&d.http, "/readyz").0 == 200, 20, "readyz");
     let m = get(&d.http, "/metrics").1;
-    assert_eq!(metric(&m, "scrim_events_total{outcome=\"accepted\"}"), accepted_before, "accepted events survive a restart");
+    assert_eq!(
+        metric(&m, "scrim_events_total{outcome=\"accepted\"}"),
+        accepted_before,
+        "accepted events survive a restart"
+    );
     // The open windows close by idle_close; the records published before are unchanged
     // and seq continues without gaps or duplicates.
     wait_until(
-        || std::fs::read_to_string(dir.path().join("out/releases.jsonl")).unwrap_or_default().lines().count() > before.lines().count(),
+        || {
+            std::fs::read_to_string(dir.path().join("out/releases.jsonl"))
+                .unwrap_or_default()
+                .lines()
+                .count()
+                > before.lines().count()
+        },
         30,
         "releases after restart",
     );
@@ -286,7 +369,11 @@ fn restart_resumes_from_state_without_losing_or_duplicating() {
     assert!(after.starts_with(&before), "published records never change");
     let seqs: Vec<u64> = after
         .lines()
-        .map(|l| serde_json::from_str::<serde_json::Value>(l).unwrap()["seq"].as_u64().unwrap())
+        .map(|l| {
+            serde_json::from_str::<serde_json::Value>(l).unwrap()["seq"]
+                .as_u64()
+                .unwrap()
+        })
         .collect();
     for (i, s) in seqs.iter().enumerate() {
         assert_eq!(*s, i as u64, "seq dense and unique");
@@ -296,14 +383,22 @@ fn restart_resumes_from_state_without_losing_or_duplicating() {
 #[test]
 fn slow_engine_makes_the_sender_block_instead_of_growing_memory() {
     let dir = tempfile::tempdir().unwrap();
-    let d = start(dir.path(), &config(dir.path(), false), &[("SCRIMTEST_SLOW_ENGINE_MS", "2000")]);
+    let d = start(
+        dir.path(),
+        &config(dir.path(), false),
+        &[("SCRIMTEST_SLOW_ENGINE_MS", "2000")],
+    );
     wait_until(|| get(&d.http, "/readyz").0 == 200, 20, "readyz");
     let mut c = TcpStream::connect(&d.tcp).unwrap();
     // The slowed engine takes one batch (≤ 512 lines) every 2 s, about 60 KB/s. Once the
     // ingest queue (64 batches) and the socket buffers are full, one 200 KB write cannot
     // finish within 3 s: the sender is blocked by TCP flow control.
     c.set_write_timeout(Some(Duration::from_secs(3))).unwrap();
-    let line = format!("{{\"ts\":{},\"zone\":\"harbour\",\"pad\":\"{}\"}}\n", now_ms(), "x".repeat(200));
+    let line = format!(
+        "{{\"ts\":{},\"zone\":\"harbour\",\"pad\":\"{}\"}}\n",
+        now_ms(),
+        "x".repeat(200)
+    );
     let chunk = line.repeat(1000);
     let mut written = 0usize;
     let blocked = loop {
@@ -315,11 +410,25 @@ fn slow_engine_makes_the_sender_block_instead_of_growing_memory() {
             break false;
         }
     };
-    assert!(blocked, "the sender was never blocked after {written} bytes");
+    assert!(
+        blocked,
+        "the sender was never blocked after {written} bytes"
+    );
     let rss_kib = std::fs::read_to_string(format!("/proc/{}/status", d.child.id()))
         .unwrap()
         .lines()
-        .find_map(|l| l.strip_prefix("VmRSS:").map(|v| v.trim().trim_end_matches(" kB").trim().parse::<u64>().unwrap()))
+        .find_map(|l| {
+            l.strip_prefix("VmRSS:").map(|v| {
+                v.trim()
+                    .trim_end_matches(" kB")
+                    .trim()
+                    .parse::<u64>()
+                    .unwrap()
+            })
+        })
         .unwrap();
-    assert!(rss_kib < 200 * 1024, "daemon RSS {rss_kib} KiB while the sender is blocked after {written} bytes");
+    assert!(
+        rss_kib < 200 * 1024,
+        "daemon RSS {rss_kib} KiB while the sender is blocked after {written} bytes"
+    );
 }

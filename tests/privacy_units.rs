@@ -54,7 +54,11 @@ fn honest_lines() -> Vec<String> {
         for c in 0..40 {
             // Each honest card taps once or twice an hour: never over the bound.
             for k in 0..(1 + c % 2) {
-                let zone = if (c + k) % 3 == 0 { "uplands" } else { "harbour" };
+                let zone = if (c + k) % 3 == 0 {
+                    "uplands"
+                } else {
+                    "harbour"
+                };
                 v.push(format!(
                     r#"{{"ts":{},"card":"c-{c}","zone":"{zone}","fare_cents":{}}}"#,
                     T0 + h * 3_600_000 + (c * 60 + k) * 1000,
@@ -79,11 +83,23 @@ fn spam_lines(n: usize) -> Vec<String> {
 }
 
 fn truths(lines: &[String]) -> Vec<Release> {
-    let mut e = Engine::new(&config(), NoiseKey::from_seed(5), EngineOptions { seeded: true, danger_keep_truth: true }).unwrap();
+    let mut e = Engine::new(
+        &config(),
+        NoiseKey::from_seed(5),
+        EngineOptions {
+            seeded: true,
+            danger_keep_truth: true,
+        },
+    )
+    .unwrap();
     let mut out = Vec::new();
     // Time order, as a feed would deliver it.
     let mut sorted: Vec<&String> = lines.iter().collect();
-    sorted.sort_by_key(|l| serde_json::from_str::<serde_json::Value>(l).unwrap()["ts"].as_i64().unwrap());
+    sorted.sort_by_key(|l| {
+        serde_json::from_str::<serde_json::Value>(l).unwrap()["ts"]
+            .as_i64()
+            .unwrap()
+    });
     for l in sorted {
         e.handle_line(l.as_bytes());
         while let Some(r) = e.poll_release() {
@@ -99,7 +115,12 @@ fn truths(lines: &[String]) -> Vec<Release> {
 
 fn truth_of(recs: &[Release], stat: &str, zone: Option<&str>, leaf: u32) -> f64 {
     recs.iter()
-        .find(|r| r.stat == stat && r.scope == "window" && r.leaf == leaf && zone.is_none_or(|z| r.group.get("zone").map(String::as_str) == Some(z)))
+        .find(|r| {
+            r.stat == stat
+                && r.scope == "window"
+                && r.leaf == leaf
+                && zone.is_none_or(|z| r.group.get("zone").map(String::as_str) == Some(z))
+        })
         .and_then(|r| r.truth.as_ref()?.as_f64())
         .expect("record with truth")
 }
@@ -114,18 +135,34 @@ fn a_unit_spamming_10000_events_moves_each_window_by_at_most_its_bound() {
     for leaf in 0..6u32 {
         for zone in ["harbour", "uplands"] {
             let d = truth_of(&b, "taps", Some(zone), leaf) - truth_of(&a, "taps", Some(zone), leaf);
-            assert!((0.0..=f64::from(K)).contains(&d), "leaf {leaf} {zone}: the spammer moved the count by {d}");
+            assert!(
+                (0.0..=f64::from(K)).contains(&d),
+                "leaf {leaf} {zone}: the spammer moved the count by {d}"
+            );
         }
         let d = truth_of(&b, "fares", None, leaf) - truth_of(&a, "fares", None, leaf);
-        assert!((0.0..=f64::from(K) * 900.0).contains(&d), "leaf {leaf}: fares moved by {d}");
+        assert!(
+            (0.0..=f64::from(K) * 900.0).contains(&d),
+            "leaf {leaf}: fares moved by {d}"
+        );
     }
     // Honest units are never bounded here, so their counts are exactly the raw counts.
     let raw_harbour_leaf0 = honest
         .iter()
-        .filter(|l| l.contains("harbour") && serde_json::from_str::<serde_json::Value>(l).unwrap()["ts"].as_i64().unwrap() < T0 + 3_600_000)
+        .filter(|l| {
+            l.contains("harbour")
+                && serde_json::from_str::<serde_json::Value>(l).unwrap()["ts"]
+                    .as_i64()
+                    .unwrap()
+                    < T0 + 3_600_000
+        })
         .count() as f64;
     assert_eq!(truth_of(&a, "taps", Some("harbour"), 0), raw_harbour_leaf0);
-    assert_eq!(truth_of(&b, "taps", Some("harbour"), 0), raw_harbour_leaf0, "window 0 has no spam");
+    assert_eq!(
+        truth_of(&b, "taps", Some("harbour"), 0),
+        raw_harbour_leaf0,
+        "window 0 has no spam"
+    );
 }
 
 #[test]
@@ -133,9 +170,16 @@ fn the_window_cap_limits_how_many_windows_a_unit_reaches() {
     // One card active in all 6 windows with max_windows_per_epoch = 4: only its first 4
     // windows count.
     let lines: Vec<String> = (0..6i64)
-        .map(|h| format!(r#"{{"ts":{},"card":"solo","zone":"uplands","fare_cents":5}}"#, T0 + h * 3_600_000))
+        .map(|h| {
+            format!(
+                r#"{{"ts":{},"card":"solo","zone":"uplands","fare_cents":5}}"#,
+                T0 + h * 3_600_000
+            )
+        })
         .collect();
     let recs = truths(&lines);
-    let counts: Vec<f64> = (0..6).map(|leaf| truth_of(&recs, "taps", Some("uplands"), leaf)).collect();
+    let counts: Vec<f64> = (0..6)
+        .map(|leaf| truth_of(&recs, "taps", Some("uplands"), leaf))
+        .collect();
     assert_eq!(counts, vec![1.0, 1.0, 1.0, 1.0, 0.0, 0.0]);
 }

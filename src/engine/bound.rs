@@ -69,7 +69,12 @@ impl Bounder {
     /// retained event with the largest priority.
     pub fn offer(&mut self, window_idx: i64, unit: u64, priority: u64, event: Event) -> u64 {
         let k = self.max_events_per_window;
-        let slot = self.open.entry(window_idx).or_default().entry(unit).or_default();
+        let slot = self
+            .open
+            .entry(window_idx)
+            .or_default()
+            .entry(unit)
+            .or_default();
         if slot.events.len() < k {
             slot.events.push((priority, event));
             return 0;
@@ -121,7 +126,11 @@ impl Bounder {
 
     /// Retained events waiting in open windows.
     pub fn retained_events(&self) -> usize {
-        self.open.values().flat_map(|w| w.values()).map(|r| r.events.len()).sum()
+        self.open
+            .values()
+            .flat_map(|w| w.values())
+            .map(|r| r.events.len())
+            .sum()
     }
 
     /// Bytes held by the per-unit epoch table (the part that scales with distinct units):
@@ -138,7 +147,12 @@ mod tests {
     use crate::engine::time::Millis;
 
     fn ev(t: i64, v: f64) -> Event {
-        Event { time: Millis(t), unit: Some(1), categories: vec![0], numbers: vec![v] }
+        Event {
+            time: Millis(t),
+            unit: Some(1),
+            categories: vec![0],
+            numbers: vec![v],
+        }
     }
 
     #[test]
@@ -183,7 +197,12 @@ mod tests {
         let run = |with_other: bool| {
             let mut b = Bounder::new(2, 1);
             for i in 0..10u64 {
-                b.offer(0, 1, i.wrapping_mul(0x9e37_79b9_7f4a_7c15), ev(i as i64, i as f64));
+                b.offer(
+                    0,
+                    1,
+                    i.wrapping_mul(0x9e37_79b9_7f4a_7c15),
+                    ev(i as i64, i as f64),
+                );
                 if with_other {
                     b.offer(0, 2, i, ev(i as i64, 100.0));
                 }

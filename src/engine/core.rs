@@ -25,7 +25,9 @@ use crate::engine::ledger::{BudgetError, EpochCharge, Ledger};
 use crate::engine::linear;
 use crate::engine::mechanism::{self, ContinualMechanism, NodeAddr, NodeNoise};
 use crate::engine::noise::{self, NoiseId, NoiseKey};
-use crate::engine::plan::{ComponentPlan, ComponentRole, Plan, PlanError, PrivacyLevel, Scope, StatPlan};
+use crate::engine::plan::{
+    ComponentPlan, ComponentRole, Plan, PlanError, PrivacyLevel, Scope, StatPlan,
+};
 use crate::engine::release::{self, Guarantee, Release, Statistics};
 use crate::engine::time::Millis;
 
@@ -193,7 +195,12 @@ impl Engine {
             .collect();
         let (bounder, lifetime, unit) = match &plan.level {
             PrivacyLevel::Event => (None, None, None),
-            PrivacyLevel::Unit { field, lifetime_rho, max_events_per_window, max_windows_per_epoch } => (
+            PrivacyLevel::Unit {
+                field,
+                lifetime_rho,
+                max_events_per_window,
+                max_windows_per_epoch,
+            } => (
                 Some(Bounder::new(*max_events_per_window, *max_windows_per_epoch)),
                 Some(*lifetime_rho),
                 Some(field.clone()),
@@ -260,7 +267,9 @@ impl Engine {
     /// Number of windows currently open (with at least one event).
     pub fn open_windows(&self) -> usize {
         match &self.bounder {
-            Some(_) => self.max_event_time.map_or(0, |t| (self.window_of(t) - self.next_close + 1).max(0) as usize),
+            Some(_) => self.max_event_time.map_or(0, |t| {
+                (self.window_of(t) - self.next_close + 1).max(0) as usize
+            }),
             None => self.open.len(),
         }
     }
@@ -281,7 +290,8 @@ impl Engine {
 
     /// Event-time watermark: largest event time minus the allowed lateness.
     pub fn watermark(&self) -> Option<Millis> {
-        self.max_event_time.map(|t| Millis(t.0.saturating_sub(self.lateness_ms)))
+        self.max_event_time
+            .map(|t| Millis(t.0.saturating_sub(self.lateness_ms)))
     }
 
     /// Parses and handles one input line (without its newline).
@@ -354,7 +364,9 @@ impl Engine {
     }
 
     fn advance_watermark(&mut self) {
-        let Some(max_t) = self.max_event_time else { return };
+        let Some(max_t) = self.max_event_time else {
+            return;
+        };
         let watermark = max_t.0.saturating_sub(self.lateness_ms);
         while (self.next_close + 1) * self.window_ms <= watermark {
             self.close_next();
@@ -413,7 +425,10 @@ impl Engine {
         let epoch = rel / t;
         let leaf = (rel % t) as u32;
 
-        let mut agg = self.open.remove(&w).unwrap_or_else(|| WindowAgg::empty(&self.plan));
+        let mut agg = self
+            .open
+            .remove(&w)
+            .unwrap_or_else(|| WindowAgg::empty(&self.plan));
         if let Some(b) = &mut self.bounder {
             let closed = b.close(w, epoch);
             self.counters.dropped_window_bound += closed.dropped_by_window_cap;
@@ -422,7 +437,11 @@ impl Engine {
             }
         }
 
-        if self.epoch.as_ref().is_none_or(|e| e.charge.epoch() != epoch) {
+        if self
+            .epoch
+            .as_ref()
+            .is_none_or(|e| e.charge.epoch() != epoch)
+        {
             self.epoch = None;
             if self.halted.is_some() {
                 self.counters.windows_suppressed += 1;
@@ -451,7 +470,13 @@ impl Engine {
                 let max_trailing = s
                     .scopes
                     .iter()
-                    .filter_map(|sc| if let Scope::Trailing(n) = sc { Some(*n) } else { None })
+                    .filter_map(|sc| {
+                        if let Scope::Trailing(n) = sc {
+                            Some(*n)
+                        } else {
+                            None
+                        }
+                    })
                     .max()
                     .unwrap_or(1);
                 let n_groups = s.groups.len();
@@ -461,14 +486,24 @@ impl Engine {
                         .iter()
                         .map(|c| {
                             (0..n_groups)
-                                .map(|_| mechanism::new_mechanism(self.plan.mechanism, horizon, c.dim, max_trailing, c.node_var))
+                                .map(|_| {
+                                    mechanism::new_mechanism(
+                                        self.plan.mechanism,
+                                        horizon,
+                                        c.dim,
+                                        max_trailing,
+                                        c.node_var,
+                                    )
+                                })
                                 .collect()
                         })
                         .collect(),
-                    truth: self
-                        .opts
-                        .danger_keep_truth
-                        .then(|| s.components.iter().map(|_| vec![Vec::new(); n_groups]).collect()),
+                    truth: self.opts.danger_keep_truth.then(|| {
+                        s.components
+                            .iter()
+                            .map(|_| vec![Vec::new(); n_groups])
+                            .collect()
+                    }),
                 }
             })
             .collect();
@@ -476,7 +511,9 @@ impl Engine {
     }
 
     fn push_and_release(&mut self, agg: WindowAgg, w: i64, epoch: u64, leaf: u32) {
-        let Some(state) = self.epoch.as_mut() else { return };
+        let Some(state) = self.epoch.as_mut() else {
+            return;
+        };
         // 1. Every node that completes with this leaf gets its noise (drawn once, by identity).
         for (si, s) in self.plan.stats.iter().enumerate() {
             for (ci, c) in s.components.iter().enumerate() {
@@ -520,7 +557,9 @@ impl Engine {
                             .zip(&s.components)
                             .map(|(per_group, c)| {
                                 let mut sum = vec![Dd::ZERO; c.dim];
-                                for leafv in &per_group[g][range.first as usize..=range.last as usize] {
+                                for leafv in
+                                    &per_group[g][range.first as usize..=range.last as usize]
+                                {
                                     for (acc, v) in sum.iter_mut().zip(leafv) {
                                         *acc = *acc + Dd::from_i128(*v);
                                     }
@@ -529,10 +568,16 @@ impl Engine {
                             })
                             .collect()
                     });
-                    let mut rec = render(s, &est, truth.as_deref(), &self.key, epoch, leaf, g, scope);
+                    let mut rec =
+                        render(s, &est, truth.as_deref(), &self.key, epoch, leaf, g, scope);
                     rec.seq = self.next_seq;
                     self.next_seq += 1;
-                    rec.group = s.groups.keys_of(g).into_iter().map(|(f, k)| (f.to_string(), k.to_string())).collect();
+                    rec.group = s
+                        .groups
+                        .keys_of(g)
+                        .into_iter()
+                        .map(|(f, k)| (f.to_string(), k.to_string()))
+                        .collect();
                     rec.window_start = start.to_rfc3339();
                     rec.window_end = end.to_rfc3339();
                     rec.epoch = epoch;
@@ -595,7 +640,12 @@ impl WindowAgg {
             values: plan
                 .stats
                 .iter()
-                .map(|s| s.components.iter().map(|c| vec![0i128; s.groups.len() * c.dim]).collect())
+                .map(|s| {
+                    s.components
+                        .iter()
+                        .map(|c| vec![0i128; s.groups.len() * c.dim])
+                        .collect()
+                })
                 .collect(),
         }
     }
@@ -632,10 +682,32 @@ fn contribute(c: &ComponentPlan, ev: &Event, slot: &mut [i128]) {
             let mid = (lo + hi) / 2.0;
             slot[0] += ((ev.numbers[*field].clamp(*lo, *hi) - mid) / q).round() as i128;
         }
-        ComponentRole::Moments { features, target, layout, feature_norm_bound, target_bound, .. } => {
+        ComponentRole::Moments {
+            features,
+            target,
+            layout,
+            feature_norm_bound,
+            target_bound,
+            units,
+            feature_bounds,
+            ..
+        } => {
+            // Clip in value units, then normalise by powers of two (exact; see
+            // `plan::moment_unit`) so the packed moments have comparable scales.
             let mut x: Vec<f64> = features.iter().map(|&i| ev.numbers[i]).collect();
             let mut y = ev.numbers[*target];
+            if let Some(b) = feature_bounds {
+                for (v, b) in x.iter_mut().zip(b) {
+                    *v = v.clamp(-b, *b);
+                }
+            }
             linear::clip(&mut x, &mut y, *feature_norm_bound, *target_bound);
+            for (v, u) in x.iter_mut().zip(&units.features) {
+                *v /= u;
+            }
+            y /= units.target;
+            // No-op in exact arithmetic; guarantees the planned bounds under rounding.
+            linear::clip(&mut x, &mut y, units.x_bound, units.y_bound);
             linear::accumulate(layout, &x, y, c.grid_exp, slot);
         }
     }
@@ -696,7 +768,13 @@ fn render(
                 unreachable!("mean plans start with a centred sum")
             };
             let mid = (lo + hi) / 2.0;
-            let ratio = |sum: f64, cnt: f64| if cnt >= 1.0 { Some((mid + sum / cnt).clamp(lo, hi)) } else { None };
+            let ratio = |sum: f64, cnt: f64| {
+                if cnt >= 1.0 {
+                    Some((mid + sum / cnt).clamp(lo, hi))
+                } else {
+                    None
+                }
+            };
             let sum = est[0].0[0].to_f64() * sum_c.quantum();
             let cnt = est[1].0[0].to_f64() * cnt_c.quantum();
             match ratio(sum, cnt) {
@@ -711,11 +789,17 @@ fn render(
                     rec.note = Some("std_error by the delta method (first order)".to_string());
                 }
                 None => {
-                    rec.note = Some("noisy count below 1: the mean is undefined for this scope".to_string());
+                    rec.note = Some(
+                        "noisy count below 1: the mean is undefined for this scope".to_string(),
+                    );
                 }
             }
             rec.truth = truth.and_then(|t| {
-                ratio(t[0][0].to_f64() * sum_c.quantum(), t[1][0].to_f64() * cnt_c.quantum()).map(release::number)
+                ratio(
+                    t[0][0].to_f64() * sum_c.quantum(),
+                    t[1][0].to_f64() * cnt_c.quantum(),
+                )
+                .map(release::number)
             });
         }
         _ => render_linear(s, est, truth, key, epoch, leaf, group, scope, &mut rec),
@@ -736,25 +820,48 @@ fn render_linear(
     rec: &mut Release,
 ) {
     let c = &s.components[0];
-    let ComponentRole::Moments { layout, .. } = &c.role else {
+    let ComponentRole::Moments { layout, units, .. } = &c.role else {
         unreachable!("linear plans have one moments component")
     };
+    // Coefficients fitted in normalised units map back: y = u_y·y', x = u_x·x', so the
+    // intercept scales by u_y and each slope by u_y / u_x (std errors alike).
+    let uy = units.target;
+    let mut unscale: Vec<f64> = Vec::new();
+    if s.intercept {
+        unscale.push(uy);
+    }
+    unscale.extend(units.features.iter().map(|u| uy / u));
+    let back = |v: &[f64]| {
+        v.iter()
+            .zip(&unscale)
+            .map(|(a, f)| a * f)
+            .collect::<Vec<f64>>()
+    };
+    let mut scales: Vec<f64> = Vec::new();
+    if s.intercept {
+        scales.push(1.0);
+    }
+    scales.extend(units.features.iter().copied());
+    scales.push(uy);
     let q = c.quantum();
-    let method = s.fit.clone().unwrap_or(linear::FitMethod::Ridge { lambda: 0.0 });
+    let method = s.fit.unwrap_or(linear::FitMethod::Ridge { lambda: 0.0 });
     let mut names: Vec<String> = Vec::new();
     if s.intercept {
         names.push("intercept".to_string());
     }
     names.extend(s.features.iter().cloned());
-    rec.fit = Some(match method {
-        linear::FitMethod::Ridge { .. } => "ridge",
-        linear::FitMethod::L1 { .. } => "l1",
-    }
-    .to_string());
+    rec.fit = Some(
+        match method {
+            linear::FitMethod::Ridge { .. } => "ridge",
+            linear::FitMethod::L1 { .. } => "l1",
+        }
+        .to_string(),
+    );
     rec.statistics = Some(Statistics {
         names: layout.coordinate_names(&s.features, &s.target),
         values: est[0].0.iter().map(|v| v.to_f64() * q).collect(),
         std_error: est[0].1.sqrt() * q,
+        scales,
     });
     // The bootstrap of the l1 fit is post-processing; its randomness is derived from the
     // key under an identity no noise node uses (level 255), so it is reproducible.
@@ -773,12 +880,18 @@ fn render_linear(
         coord: 0,
     });
     let obj = |vals: &[f64]| {
-        serde_json::Value::Object(names.iter().cloned().zip(vals.iter().map(|v| release::number(*v))).collect())
+        serde_json::Value::Object(
+            names
+                .iter()
+                .cloned()
+                .zip(vals.iter().map(|v| release::number(*v)))
+                .collect(),
+        )
     };
     match linear::fit(layout, &est[0].0, est[0].1, c.grid_exp, &method, &mut rng) {
         Ok(f) => {
-            rec.value = obj(&f.coefficients);
-            rec.std_error = obj(&f.std_errors);
+            rec.value = obj(&back(&f.coefficients));
+            rec.std_error = obj(&back(&f.std_errors));
             rec.condition_number = Some(f.condition_number);
             let mut note = "coefficient std_error by the delta method".to_string();
             if matches!(method, linear::FitMethod::L1 { .. }) {
@@ -808,7 +921,9 @@ fn render_linear(
             index: u64::from(leaf),
             coord: 0,
         });
-        rec.truth = linear::fit(layout, &t[0], 0.0, c.grid_exp, &method, &mut trng).ok().map(|f| obj(&f.coefficients));
+        rec.truth = linear::fit(layout, &t[0], 0.0, c.grid_exp, &method, &mut trng)
+            .ok()
+            .map(|f| obj(&back(&f.coefficients)));
     }
 }
 
@@ -897,14 +1012,25 @@ target_bound = 30.0
 
     /// Exact leaves `[stat][component][group][leaf]` after processing `lines`.
     fn leaves(cfg: &Config, lines: &[&str]) -> Vec<Vec<Vec<Vec<Vec<i128>>>>> {
-        let mut e = Engine::new(cfg, NoiseKey::from_seed(1), EngineOptions { seeded: true, danger_keep_truth: true })
-            .expect("engine");
+        let mut e = Engine::new(
+            cfg,
+            NoiseKey::from_seed(1),
+            EngineOptions {
+                seeded: true,
+                danger_keep_truth: true,
+            },
+        )
+        .expect("engine");
         for l in lines {
             e.handle_line(l.as_bytes());
         }
         e.finish();
         let state = e.epoch.as_ref().expect("one epoch");
-        state.series.iter().map(|s| s.truth.clone().expect("truth kept")).collect()
+        state
+            .series
+            .iter()
+            .map(|s| s.truth.clone().expect("truth kept"))
+            .collect()
     }
 
     fn sq(v: &[i128]) -> f64 {
@@ -912,7 +1038,12 @@ target_bound = 30.0
     }
 
     /// ‖Δ(node vector)‖² for one component over all groups, by brute force.
-    fn node_delta_sq(kind: MechanismKind, a: &[Vec<Vec<i128>>], b: &[Vec<Vec<i128>>], horizon: u32) -> f64 {
+    fn node_delta_sq(
+        kind: MechanismKind,
+        a: &[Vec<Vec<i128>>],
+        b: &[Vec<Vec<i128>>],
+        horizon: u32,
+    ) -> f64 {
         let mut total = 0.0;
         for (ga, gb) in a.iter().zip(b) {
             let n = ga.len().max(gb.len());
@@ -944,6 +1075,7 @@ target_bound = 30.0
                         level += 1;
                     }
                 }
+                #[allow(clippy::needless_range_loop)] // t and j index a matrix product
                 MechanismKind::SqrtFactorization => {
                     let mut c = vec![1.0f64; n];
                     for k in 1..n {
@@ -970,11 +1102,20 @@ target_bound = 30.0
             let all: Vec<&str> = events.iter().map(|e| e.2.as_str()).collect();
             let full = leaves(&cfg, &all);
             for removed in 0..12u32 {
-                let rest: Vec<&str> = events.iter().filter(|e| e.1 != removed).map(|e| e.2.as_str()).collect();
+                let rest: Vec<&str> = events
+                    .iter()
+                    .filter(|e| e.1 != removed)
+                    .map(|e| e.2.as_str())
+                    .collect();
                 let nb = leaves(&cfg, &rest);
                 for (si, s) in plan.stats.iter().enumerate() {
                     for (ci, c) in s.components.iter().enumerate() {
-                        let d = node_delta_sq(plan.mechanism, &full[si][ci], &nb[si][ci], plan.epoch_windows);
+                        let d = node_delta_sq(
+                            plan.mechanism,
+                            &full[si][ci],
+                            &nb[si][ci],
+                            plan.epoch_windows,
+                        );
                         assert!(
                             d <= c.sensitivity_sq * (1.0 + 1e-9),
                             "{mech}: removing unit {removed} moved stat {} component {ci} by Δ² = {d:e} > {:e}",

@@ -79,7 +79,10 @@ impl Sub for Dd {
 impl Neg for Dd {
     type Output = Dd;
     fn neg(self) -> Dd {
-        Dd { hi: -self.hi, lo: -self.lo }
+        Dd {
+            hi: -self.hi,
+            lo: -self.lo,
+        }
     }
 }
 
@@ -119,7 +122,14 @@ mod tests {
     #[test]
     fn i128_round_trip_is_exact_below_2_pow_106() {
         // Exactness of TwoSum (Knuth, TAOCP vol. 2, 4.2.2): hi + lo reproduces the integer.
-        for &x in &[0i128, 1, -1, (1i128 << 80) + 12345, -(1i128 << 100) - 7, (1i128 << 105) - 1] {
+        for &x in &[
+            0i128,
+            1,
+            -1,
+            (1i128 << 80) + 12345,
+            -(1i128 << 100) - 7,
+            (1i128 << 105) - 1,
+        ] {
             let d = Dd::from_i128(x);
             assert_eq!(d.hi as i128 + d.lo as i128, x, "x = {x}");
         }

@@ -72,20 +72,38 @@ impl Ledger {
     /// A ledger charging `rho_per_epoch` per epoch against `lifetime_rho` (None: event level,
     /// parallel composition, no cap).
     pub fn new(rho_per_epoch: f64, lifetime_rho: Option<f64>) -> Ledger {
-        Ledger { rho_per_epoch, lifetime_rho, epochs_charged: 0, last_epoch: None }
+        Ledger {
+            rho_per_epoch,
+            lifetime_rho,
+            epochs_charged: 0,
+            last_epoch: None,
+        }
     }
 
     /// Restores a ledger from saved counters.
-    pub fn restore(rho_per_epoch: f64, lifetime_rho: Option<f64>, epochs_charged: u64, last_epoch: Option<u64>) -> Ledger {
-        Ledger { rho_per_epoch, lifetime_rho, epochs_charged, last_epoch }
+    pub fn restore(
+        rho_per_epoch: f64,
+        lifetime_rho: Option<f64>,
+        epochs_charged: u64,
+        last_epoch: Option<u64>,
+    ) -> Ledger {
+        Ledger {
+            rho_per_epoch,
+            lifetime_rho,
+            epochs_charged,
+            last_epoch,
+        }
     }
 
     /// Charges `epoch`. Fails closed when the lifetime cap cannot cover it.
     pub fn charge_epoch(&mut self, epoch: u64) -> Result<EpochCharge, BudgetError> {
-        if let Some(last) = self.last_epoch {
-            if epoch <= last {
-                return Err(BudgetError::OutOfOrder { epoch, last: self.last_epoch });
-            }
+        if let Some(last) = self.last_epoch
+            && epoch <= last
+        {
+            return Err(BudgetError::OutOfOrder {
+                epoch,
+                last: self.last_epoch,
+            });
         }
         if let Some(lifetime) = self.lifetime_rho {
             let after = (self.epochs_charged + 1) as f64 * self.rho_per_epoch;
@@ -101,7 +119,10 @@ impl Ledger {
         }
         self.epochs_charged += 1;
         self.last_epoch = Some(epoch);
-        Ok(EpochCharge { epoch, rho: self.rho_per_epoch })
+        Ok(EpochCharge {
+            epoch,
+            rho: self.rho_per_epoch,
+        })
     }
 
     /// zCDP spent over the lifetime (unit level: epochs × ρ; event level: ρ of one epoch
@@ -173,7 +194,13 @@ mod tests {
     fn epochs_cannot_be_charged_twice() {
         let mut l = Ledger::new(0.5, Some(4.0));
         l.charge_epoch(3).unwrap();
-        assert!(matches!(l.charge_epoch(3), Err(BudgetError::OutOfOrder { .. })));
-        assert!(matches!(l.charge_epoch(1), Err(BudgetError::OutOfOrder { .. })));
+        assert!(matches!(
+            l.charge_epoch(3),
+            Err(BudgetError::OutOfOrder { .. })
+        ));
+        assert!(matches!(
+            l.charge_epoch(1),
+            Err(BudgetError::OutOfOrder { .. })
+        ));
     }
 }

@@ -54,7 +54,10 @@ impl PrivacyLevel {
     pub fn events_per_window(&self) -> u32 {
         match self {
             PrivacyLevel::Event => 1,
-            PrivacyLevel::Unit { max_events_per_window, .. } => *max_events_per_window,
+            PrivacyLevel::Unit {
+                max_events_per_window,
+                ..
+            } => *max_events_per_window,
         }
     }
 
@@ -62,7 +65,10 @@ impl PrivacyLevel {
     pub fn windows_per_epoch(&self) -> u32 {
         match self {
             PrivacyLevel::Event => 1,
-            PrivacyLevel::Unit { max_windows_per_epoch, .. } => *max_windows_per_epoch,
+            PrivacyLevel::Unit {
+                max_windows_per_epoch,
+                ..
+            } => *max_windows_per_epoch,
         }
     }
 }
@@ -91,9 +97,18 @@ impl Scope {
     /// The leaves this scope covers when leaf `leaf` has just closed.
     pub fn range(&self, leaf: u32) -> LeafRange {
         match self {
-            Scope::Window => LeafRange { first: leaf, last: leaf },
-            Scope::EpochToDate => LeafRange { first: 0, last: leaf },
-            Scope::Trailing(n) => LeafRange { first: (leaf + 1).saturating_sub(*n), last: leaf },
+            Scope::Window => LeafRange {
+                first: leaf,
+                last: leaf,
+            },
+            Scope::EpochToDate => LeafRange {
+                first: 0,
+                last: leaf,
+            },
+            Scope::Trailing(n) => LeafRange {
+                first: (leaf + 1).saturating_sub(*n),
+                last: leaf,
+            },
         }
     }
 }
@@ -133,6 +148,10 @@ pub enum ComponentRole {
         intercept: bool,
         /// L2 clip of the feature vector.
         feature_norm_bound: f64,
+        /// Normalisation units (see [`MomentUnits`]).
+        units: MomentUnits,
+        /// Per-feature clamps, if configured.
+        feature_bounds: Option<Vec<f64>>,
         /// Clamp of |y|.
         target_bound: f64,
     },
@@ -168,7 +187,13 @@ impl ComponentPlan {
     }
 
     /// Standard deviation, in value units, of the estimate of `range` after `leaves` leaves.
-    pub fn std_error(&self, mech: MechanismKind, horizon: u32, leaves: u32, range: LeafRange) -> f64 {
+    pub fn std_error(
+        &self,
+        mech: MechanismKind,
+        horizon: u32,
+        leaves: u32,
+        range: LeafRange,
+    ) -> f64 {
         let var = mechanism::estimate_variance(mech, horizon, self.node_var, leaves, range);
         var.sqrt() * self.quantum()
     }
@@ -331,7 +356,10 @@ impl Plan {
                 // Split the statistic's share evenly over its components (mean: ρ/2 each):
                 // zCDP composes additively (Bun & Steinke 2016), so the sum is the share.
                 let comp = plan_component(role, rho_share / n_roles, &level, mech, horizon)
-                    .ok_or_else(|| PlanError::GridOverflow { stat: s.name.clone(), sigma: 0.0 })?;
+                    .ok_or_else(|| PlanError::GridOverflow {
+                        stat: s.name.clone(),
+                        sigma: 0.0,
+                    })?;
                 components.push(comp);
             }
             let mut scopes = vec![Scope::Window, Scope::EpochToDate];
@@ -411,10 +439,18 @@ fn roles_of(s: &StatConfig, number_index: &mut impl FnMut(&str) -> usize) -> Vec
     match &s.kind {
         StatKind::Count => vec![ComponentRole::Count],
         StatKind::Sum { field, range } => {
-            vec![ComponentRole::Sum { field: number_index(field), lo: range.0, hi: range.1 }]
+            vec![ComponentRole::Sum {
+                field: number_index(field),
+                lo: range.0,
+                hi: range.1,
+            }]
         }
         StatKind::Mean { field, range } => vec![
-            ComponentRole::CentredSum { field: number_index(field), lo: range.0, hi: range.1 },
+            ComponentRole::CentredSum {
+                field: number_index(field),
+                lo: range.0,
+                hi: range.1,
+            },
             ComponentRole::Count,
         ],
         StatKind::Linear(l) => {
@@ -425,9 +461,79 @@ fn roles_of(s: &StatConfig, number_index: &mut impl FnMut(&str) -> usize) -> Vec
                 target,
                 layout: linear::Layout::new(l.features.len(), l.intercept),
                 intercept: l.intercept,
+                feature_bounds: l.feature_bounds.clone(),
+                units: MomentUnits::new(
+                    l.features.len(),
+                    l.feature_norm_bound,
+                    l.feature_bounds.as_deref(),
+                    l.target_bound,
+                ),
                 feature_norm_bound: l.feature_norm_bound,
                 target_bound: l.target_bound,
             }]
+        }
+    }
+}
+
+/// The unit in which the linear kind accumulates a clipped quantity with bound `b`: the
+/// smallest power of two ≥ b. Dividing by a power of two is exact in floating point, so the
+/// normalised data carry no extra rounding (NIST StRD digits are unaffected), and the
+/// normalised bound `b / unit` lies in (1/2, 1]. Normalising puts n, Σx, Σy, XᵀX, Xᵀy and
+/// yᵀy on comparable scales, so one noise scale serves them all: without it the count n
+/// gets noise sized for the largest y², which can swamp it.
+pub fn moment_unit(b: f64) -> f64 {
+    if b > 0.0 && b.is_finite() {
+        2f64.powi(b.log2().ceil() as i32)
+    } else {
+        1.0
+    }
+}
+
+/// Units in which the linear kind accumulates its moments: x'_j = x_j / features[j] and
+/// y' = y / target, all powers of two (exact division).
+#[derive(Clone, Debug, PartialEq)]
+pub struct MomentUnits {
+    /// Unit of each feature.
+    pub features: Vec<f64>,
+    /// Unit of the target.
+    pub target: f64,
+    /// Bound on ‖x'‖₂ after clipping.
+    pub x_bound: f64,
+    /// Bound on |y'| after clipping.
+    pub y_bound: f64,
+}
+
+impl MomentUnits {
+    /// Units for `n` features with L2 clip `b_x`, optional per-feature clamps, target clip `b_y`.
+    ///
+    /// Derivation of the normalised bounds: after clamping |x_j| ≤ c_j = min(b_j, b_x) and the
+    /// L2 clip ‖x‖ ≤ b_x (which only shrinks coordinates), ‖x'‖² = Σ (x_j/u_j)² is at most
+    /// Σ (c_j/u_j)², and also at most ‖x‖²/min_j u_j² ≤ (b_x / min u)²; we take the smaller.
+    /// |y'| ≤ b_y / u_y.
+    pub fn new(n: usize, b_x: f64, per_feature: Option<&[f64]>, b_y: f64) -> MomentUnits {
+        let clamps: Vec<f64> = match per_feature {
+            Some(b) => b.iter().map(|v| v.min(b_x)).collect(),
+            None => vec![b_x; n],
+        };
+        let features: Vec<f64> = clamps.iter().map(|c| moment_unit(*c)).collect();
+        let by_coord = clamps
+            .iter()
+            .zip(&features)
+            .map(|(c, u)| (c / u).powi(2))
+            .sum::<f64>()
+            .sqrt();
+        let min_unit = features.iter().copied().fold(f64::INFINITY, f64::min);
+        let x_bound = by_coord.min(if min_unit.is_finite() {
+            b_x / min_unit
+        } else {
+            0.0
+        });
+        let target = moment_unit(b_y);
+        MomentUnits {
+            features,
+            target,
+            x_bound,
+            y_bound: b_y / target,
         }
     }
 }
@@ -438,11 +544,19 @@ fn value_scale(role: &ComponentRole) -> (f64, usize) {
         ComponentRole::Count => (1.0, 1),
         ComponentRole::Sum { lo, hi, .. } => (lo.abs().max(hi.abs()), 1),
         ComponentRole::CentredSum { lo, hi, .. } => ((hi - lo) / 2.0, 1),
-        ComponentRole::Moments { layout, intercept, feature_norm_bound, target_bound, .. } => {
-            let z2 = if *intercept { 1.0 } else { 0.0 }
-                + feature_norm_bound * feature_norm_bound
-                + target_bound * target_bound;
-            (z2, layout.dim())
+        // Moments are accumulated in normalised units (see `moment_units`), where the clip
+        // bounds become r_x, r_y ≤ 1, so ‖z‖² ≤ [intercept] + r_x² + r_y² ≤ 3.
+        ComponentRole::Moments {
+            layout,
+            intercept,
+            units,
+            ..
+        } => {
+            let (rx, ry) = (units.x_bound, units.y_bound);
+            (
+                if *intercept { 1.0 } else { 0.0 } + rx * rx + ry * ry,
+                layout.dim(),
+            )
         }
     }
 }
@@ -453,7 +567,8 @@ fn value_scale(role: &ComponentRole) -> (f64, usize) {
 /// - Sum: `round(clamp(v)/q)` is monotone in `v`, so its largest magnitude is attained at an
 ///   end of the range: `max(|round(lo/q)|, |round(hi/q)|)²` — exact, no slack needed.
 /// - Centred sum: the same with `lo - mid` and `hi - mid` (rounding of `v - mid` is monotone).
-/// - Moments: [`linear::event_sensitivity_sq`] (upper-triangle norm ≤ ‖z‖², plus rounding).
+/// - Moments: [`linear::event_sensitivity_sq`] (upper-triangle norm ≤ ‖z‖², plus rounding) in
+///   normalised units, where the clip bounds are 1.
 fn event_sens_sq(role: &ComponentRole, e: i32) -> f64 {
     let q = 2f64.powi(e);
     match role {
@@ -467,11 +582,14 @@ fn event_sens_sq(role: &ComponentRole, e: i32) -> f64 {
         }
         ComponentRole::CentredSum { lo, hi, .. } => {
             let mid = (lo + hi) / 2.0;
-            let m = ((lo - mid) / q).round().abs().max(((hi - mid) / q).round().abs());
+            let m = ((lo - mid) / q)
+                .round()
+                .abs()
+                .max(((hi - mid) / q).round().abs());
             m * m
         }
-        ComponentRole::Moments { layout, feature_norm_bound, target_bound, .. } => {
-            linear::event_sensitivity_sq(layout, *feature_norm_bound, *target_bound, e)
+        ComponentRole::Moments { layout, units, .. } => {
+            linear::event_sensitivity_sq(layout, units.x_bound, units.y_bound, e)
         }
     }
 }

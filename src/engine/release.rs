@@ -37,6 +37,9 @@ pub struct Statistics {
     pub values: Vec<f64>,
     /// Standard deviation of the noise of every coordinate (they are independent).
     pub std_error: f64,
+    /// Unit of each component of z = (1, features…, target): statistics are in normalised
+    /// units, so coordinate (a, b) in value units is `values[k] · scales[a] · scales[b]`.
+    pub scales: Vec<f64>,
 }
 
 /// One release record.

@@ -23,7 +23,9 @@ pub const MAX_EVENT_TIME: Millis = Millis(253_402_300_799_999);
 #[non_exhaustive]
 pub enum DurationError {
     /// Not `<positive integer><unit>`.
-    #[error("'{0}' is not a duration: write a whole number followed by ms, s, m, h or d (e.g. \"1h\", \"90s\")")]
+    #[error(
+        "'{0}' is not a duration: write a whole number followed by ms, s, m, h or d (e.g. \"1h\", \"90s\")"
+    )]
     Syntax(String),
     /// The value overflows 64-bit milliseconds.
     #[error("'{0}' is too long a duration")]
@@ -38,7 +40,9 @@ pub fn parse_duration(s: &str) -> Result<DurationMs, DurationError> {
     if num.is_empty() {
         return Err(DurationError::Syntax(s.to_string()));
     }
-    let n: i64 = num.parse().map_err(|_| DurationError::Overflow(s.to_string()))?;
+    let n: i64 = num
+        .parse()
+        .map_err(|_| DurationError::Overflow(s.to_string()))?;
     let mult = match unit {
         "ms" => 1,
         "s" => 1_000,
@@ -55,7 +59,12 @@ pub fn parse_duration(s: &str) -> Result<DurationMs, DurationError> {
 impl fmt::Display for DurationMs {
     fn fmt(&self, f: &mut fmt::Formatter<'_>) -> fmt::Result {
         let ms = self.0;
-        for (unit, size) in [("d", 86_400_000), ("h", 3_600_000), ("m", 60_000), ("s", 1_000)] {
+        for (unit, size) in [
+            ("d", 86_400_000),
+            ("h", 3_600_000),
+            ("m", 60_000),
+            ("s", 1_000),
+        ] {
             if ms != 0 && ms % size == 0 {
                 return write!(f, "{}{}", ms / size, unit);
             }
@@ -81,7 +90,11 @@ impl Millis {
                     t.minute(),
                     t.second()
                 );
-                if ms == 0 { format!("{base}Z") } else { format!("{base}.{ms:03}Z") }
+                if ms == 0 {
+                    format!("{base}Z")
+                } else {
+                    format!("{base}.{ms:03}Z")
+                }
             }
             Err(_) => format!("@{}ms", self.0),
         }
@@ -90,7 +103,8 @@ impl Millis {
     /// Parses an RFC 3339 timestamp (any offset) into UTC milliseconds, truncating
     /// sub-millisecond digits. Returns `None` if malformed or outside the accepted range.
     pub fn parse_rfc3339(s: &str) -> Option<Millis> {
-        let t = time::OffsetDateTime::parse(s, &time::format_description::well_known::Rfc3339).ok()?;
+        let t =
+            time::OffsetDateTime::parse(s, &time::format_description::well_known::Rfc3339).ok()?;
         let ms = i64::try_from(t.unix_timestamp_nanos().div_euclid(1_000_000)).ok()?;
         let m = Millis(ms);
         (MIN_EVENT_TIME..=MAX_EVENT_TIME).contains(&m).then_some(m)

@@ -51,7 +51,12 @@ impl ReleaseStore {
             None => 0,
             Some(a) => self.records.partition_point(|r| r.seq <= a),
         };
-        self.records.iter().skip(start).take(limit).cloned().collect()
+        self.records
+            .iter()
+            .skip(start)
+            .take(limit)
+            .cloned()
+            .collect()
     }
 }
 
@@ -172,16 +177,19 @@ fn update_gauges(m: &mut Metrics, engine: &Engine, window_ms: i64) {
     m.observe(engine.counters());
     let l = engine.ledger();
     m.budget_spent.set(l.spent());
-    m.budget_remaining.set(l.remaining().unwrap_or(f64::INFINITY));
+    m.budget_remaining
+        .set(l.remaining().unwrap_or(f64::INFINITY));
     m.budget_exhausted.set(i64::from(engine.halted().is_some()));
     let plan = engine.plan();
     if let Some((_, closed)) = engine.epoch_position() {
-        m.epoch_windows_remaining.set(i64::from(plan.epoch_windows - closed));
+        m.epoch_windows_remaining
+            .set(i64::from(plan.epoch_windows - closed));
         // Epochs still affordable after the current one, each of T windows of length L.
         let eta = match plan.epochs_allowed() {
             Some(n) => {
                 let left_epochs = n.saturating_sub(l.epochs_charged()) as f64;
-                let left_windows = left_epochs * f64::from(plan.epoch_windows) + f64::from(plan.epoch_windows - closed);
+                let left_windows = left_epochs * f64::from(plan.epoch_windows)
+                    + f64::from(plan.epoch_windows - closed);
                 left_windows * window_ms as f64 / 1000.0
             }
             None => f64::INFINITY,
@@ -197,11 +205,23 @@ fn update_gauges(m: &mut Metrics, engine: &Engine, window_ms: i64) {
 /// Runs the daemon until SIGTERM/SIGINT. `seed` replaces the state's OS-random noise key
 /// (only reachable with `--insecure-seed`).
 pub async fn run(config: Config, seed: Option<u64>) -> Result<(), AppError> {
-    let io = |what: String| move |source: std::io::Error| AppError::Io { context: what, source };
+    let io = |what: String| {
+        move |source: std::io::Error| AppError::Io {
+            context: what,
+            source,
+        }
+    };
     let (mut state, key, records) = StateDir::open(&config.state.dir, &config.fingerprint(), seed)
         .map_err(|e| AppError::State(e.to_string()))?;
     let seeded = seed.is_some();
-    let mut engine = Engine::new(&config, key, EngineOptions { seeded, danger_keep_truth: false })?;
+    let mut engine = Engine::new(
+        &config,
+        key,
+        EngineOptions {
+            seeded,
+            danger_keep_truth: false,
+        },
+    )?;
     // Rebuild the engine from the log: same inputs, same key, same noise, same seq.
     let mut file_offsets = vec![0u64; config.sources.len()];
     for r in &records {
@@ -223,37 +243,45 @@ pub async fn run(config: Config, seed: Option<u64>) -> Result<(), AppError> {
                 for l in lines {
                     engine.handle_line(l);
                 }
-                if let Some((src, off)) = offset {
-                    if let Some(o) = file_offsets.get_mut(*src as usize) {
-                        *o = *off;
-                    }
+                if let Some((src, off)) = offset
+                    && let Some(o) = file_offsets.get_mut(*src as usize)
+                {
+                    *o = *off;
                 }
             }
         }
     }
     let rel_path = config.output.dir.join("releases.jsonl");
-    std::fs::create_dir_all(&config.output.dir).map_err(io(format!("creating {}", config.output.dir.display())))?;
-    let published = crate::runtime::state::published_seq(&rel_path).map_err(|e| AppError::State(e.to_string()))?;
-    let mut sink = JsonlSink::open(&config.output.dir).map_err(io(format!("opening {}", config.output.dir.display())))?;
+    std::fs::create_dir_all(&config.output.dir)
+        .map_err(io(format!("creating {}", config.output.dir.display())))?;
+    let published = crate::runtime::state::published_seq(&rel_path)
+        .map_err(|e| AppError::State(e.to_string()))?;
+    let mut sink = JsonlSink::open(&config.output.dir)
+        .map_err(io(format!("opening {}", config.output.dir.display())))?;
     let mut restored = Vec::new();
     while let Some(r) = engine.poll_release() {
         if published.is_none_or(|p| r.seq > p) {
-            sink.publish(&r).map_err(io("writing releases".to_string()))?;
+            sink.publish(&r)
+                .map_err(io("writing releases".to_string()))?;
         }
         restored.push(r);
     }
-    if let Some(p) = published {
-        if restored.last().is_none_or(|r| r.seq < p) {
-            return Err(AppError::State(format!(
-                "{} holds releases up to seq {p} but the state in {} reproduces fewer: restore both from the same backup",
-                rel_path.display(),
-                config.state.dir.display()
-            )));
-        }
+    if let Some(p) = published
+        && restored.last().is_none_or(|r| r.seq < p)
+    {
+        return Err(AppError::State(format!(
+            "{} holds releases up to seq {p} but the state in {} reproduces fewer: restore both from the same backup",
+            rel_path.display(),
+            config.state.dir.display()
+        )));
     }
     sink.flush().map_err(io("writing releases".to_string()))?;
     if !records.is_empty() {
-        tracing::info!(records = records.len(), releases = restored.len(), "state restored from the log");
+        tracing::info!(
+            records = records.len(),
+            releases = restored.len(),
+            "state restored from the log"
+        );
     }
     let metrics = Metrics::new();
     metrics.declare_stats(engine.plan().stats.iter().map(|s| s.name.as_str()));
@@ -277,7 +305,9 @@ pub async fn run(config: Config, seed: Option<u64>) -> Result<(), AppError> {
     let http_listener = tokio::net::TcpListener::bind(config.http.listen)
         .await
         .map_err(io(format!("binding http.listen {}", config.http.listen)))?;
-    let http_addr = http_listener.local_addr().map_err(io("reading the HTTP address".to_string()))?;
+    let http_addr = http_listener
+        .local_addr()
+        .map_err(io("reading the HTTP address".to_string()))?;
     let router = crate::runtime::http::router(shared.clone());
     let mut http_shutdown = shutdown_rx.clone();
     let http_task = tokio::spawn(async move {
@@ -294,7 +324,9 @@ pub async fn run(config: Config, seed: Option<u64>) -> Result<(), AppError> {
     for (i, src) in config.sources.iter().enumerate() {
         let (tx, sd, m) = (tx.clone(), shutdown_rx.clone(), metrics.clone());
         match src {
-            SourceConfig::Stdin => source_tasks.push(tokio::spawn(sources::stdin_source(max_line, tx, sd, m))),
+            SourceConfig::Stdin => {
+                source_tasks.push(tokio::spawn(sources::stdin_source(max_line, tx, sd, m)))
+            }
             SourceConfig::File { path } => source_tasks.push(tokio::spawn(sources::file_source(
                 i,
                 path.clone(),
@@ -305,11 +337,17 @@ pub async fn run(config: Config, seed: Option<u64>) -> Result<(), AppError> {
                 m,
                 Duration::from_millis(100),
             ))),
-            SourceConfig::Tcp { listen, max_connections, idle_timeout } => {
+            SourceConfig::Tcp {
+                listen,
+                max_connections,
+                idle_timeout,
+            } => {
                 let l = tokio::net::TcpListener::bind(listen)
                     .await
                     .map_err(io(format!("binding sources[{i}].listen {listen}")))?;
-                let addr = l.local_addr().map_err(io("reading a source address".to_string()))?;
+                let addr = l
+                    .local_addr()
+                    .map_err(io("reading a source address".to_string()))?;
                 eprintln!("scrim: tcp source {i} listening on {addr}");
                 tracing::info!(%addr, "tcp source listening");
                 source_tasks.push(tokio::spawn(sources::tcp_source(
@@ -334,7 +372,10 @@ pub async fn run(config: Config, seed: Option<u64>) -> Result<(), AppError> {
         #[cfg(unix)]
         {
             use tokio::signal::unix::{SignalKind, signal};
-            match (signal(SignalKind::terminate()), signal(SignalKind::interrupt())) {
+            match (
+                signal(SignalKind::terminate()),
+                signal(SignalKind::interrupt()),
+            ) {
                 (Ok(mut t), Ok(mut i)) => {
                     tokio::select! { _ = t.recv() => {}, _ = i.recv() => {} }
                 }
@@ -411,16 +452,23 @@ pub async fn run(config: Config, seed: Option<u64>) -> Result<(), AppError> {
                 engine.handle_tick(now);
             }
             if last_sync.elapsed() >= checkpoint_every {
-                state.sync().map_err(io(format!("syncing state in {}", config.state.dir.display())))?;
+                state.sync().map_err(io(format!(
+                    "syncing state in {}",
+                    config.state.dir.display()
+                )))?;
                 last_sync = std::time::Instant::now();
             }
         }
         if engine_has_releases(&engine) {
             // The inputs behind these releases are durable before anyone can see them.
-            state.sync().map_err(io(format!("syncing state in {}", config.state.dir.display())))?;
+            state.sync().map_err(io(format!(
+                "syncing state in {}",
+                config.state.dir.display()
+            )))?;
             last_sync = std::time::Instant::now();
         }
-        publish(&mut engine, &mut sink, &shared, &metrics, window_ms).map_err(io("writing releases".to_string()))?;
+        publish(&mut engine, &mut sink, &shared, &metrics, window_ms)
+            .map_err(io("writing releases".to_string()))?;
         if let Ok(mut m) = metrics.lock() {
             m.ingest_queue_depth.set(rx.len() as i64);
             update_gauges(&mut m, &engine, window_ms);
@@ -431,7 +479,10 @@ pub async fn run(config: Config, seed: Option<u64>) -> Result<(), AppError> {
         let _ = tokio::time::timeout(Duration::from_secs(5), t).await;
     }
     sink.flush().map_err(io("flushing releases".to_string()))?;
-    state.sync().map_err(io(format!("syncing state in {}", config.state.dir.display())))?;
+    state.sync().map_err(io(format!(
+        "syncing state in {}",
+        config.state.dir.display()
+    )))?;
     let _ = shutdown_tx.send(true);
     let _ = tokio::time::timeout(Duration::from_secs(5), http_task).await;
     tracing::info!("stopped");
@@ -463,7 +514,8 @@ fn publish(
     if let Ok(m) = metrics.lock() {
         m.last_release_time.set(now.0 as f64 / 1000.0);
         if let Some(end) = engine.last_closed_end() {
-            m.release_lag.set(((now.0 - end.0) as f64 / 1000.0).max(0.0));
+            m.release_lag
+                .set(((now.0 - end.0) as f64 / 1000.0).max(0.0));
         }
         let _ = window_ms;
     }
@@ -477,8 +529,17 @@ fn publish(
 
 /// `scrim demo --serve`: serves a finished run's releases, budget and metrics over the same
 /// HTTP API (and dashboard) as the daemon, until SIGINT/SIGTERM.
-pub async fn serve_snapshot(engine: &Engine, releases: Vec<Release>, listen: std::net::SocketAddr) -> Result<(), AppError> {
-    let io = |what: String| move |source: std::io::Error| AppError::Io { context: what, source };
+pub async fn serve_snapshot(
+    engine: &Engine,
+    releases: Vec<Release>,
+    listen: std::net::SocketAddr,
+) -> Result<(), AppError> {
+    let io = |what: String| {
+        move |source: std::io::Error| AppError::Io {
+            context: what,
+            source,
+        }
+    };
     let mut metrics = Metrics::new();
     metrics.declare_stats(engine.plan().stats.iter().map(|s| s.name.as_str()));
     update_gauges(&mut metrics, engine, 0);
@@ -493,8 +554,12 @@ pub async fn serve_snapshot(engine: &Engine, releases: Vec<Release>, listen: std
         metrics: Arc::new(Mutex::new(metrics)),
         ready: AtomicBool::new(true),
     });
-    let listener = tokio::net::TcpListener::bind(listen).await.map_err(io(format!("binding {listen}")))?;
-    let addr = listener.local_addr().map_err(io("reading the HTTP address".to_string()))?;
+    let listener = tokio::net::TcpListener::bind(listen)
+        .await
+        .map_err(io(format!("binding {listen}")))?;
+    let addr = listener
+        .local_addr()
+        .map_err(io("reading the HTTP address".to_string()))?;
     eprintln!("scrim: http listening on {addr} (dashboard at http://{addr}/); Ctrl-C to stop");
     axum::serve(listener, crate::runtime::http::router(shared))
         .with_graceful_shutdown(async {

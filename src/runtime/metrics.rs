@@ -2,7 +2,9 @@
 //! the prometheus crate at the edge. Names follow Prometheus conventions (base units,
 //! `_total` for counters) and include every name the outside contract fixes.
 
-use prometheus::{Encoder, Gauge, IntCounter, IntCounterVec, IntGauge, Opts, Registry, TextEncoder};
+use prometheus::{
+    Encoder, Gauge, IntCounter, IntCounterVec, IntGauge, Opts, Registry, TextEncoder,
+};
 
 use crate::engine::Counters;
 
@@ -53,40 +55,82 @@ impl Metrics {
     pub fn new() -> Metrics {
         let registry = Registry::new();
         let events = must(IntCounterVec::new(
-            Opts::new("scrim_events_total", "Input events by outcome (accepted, rejected, late)"),
+            Opts::new(
+                "scrim_events_total",
+                "Input events by outcome (accepted, rejected, late)",
+            ),
             &["outcome"],
         ));
         let rejected = must(IntCounterVec::new(
-            Opts::new("scrim_rejected_events_total", "Rejected input lines by reason"),
+            Opts::new(
+                "scrim_rejected_events_total",
+                "Rejected input lines by reason",
+            ),
             &["reason"],
         ));
         let dropped = must(IntCounterVec::new(
-            Opts::new("scrim_bounded_events_total", "Accepted events dropped by contribution bounds"),
+            Opts::new(
+                "scrim_bounded_events_total",
+                "Accepted events dropped by contribution bounds",
+            ),
             &["bound"],
         ));
         let releases = must(IntCounterVec::new(
-            Opts::new("scrim_releases_total", "Release records published, by statistic"),
+            Opts::new(
+                "scrim_releases_total",
+                "Release records published, by statistic",
+            ),
             &["stat"],
         ));
         let g = |name: &str, help: &str| must(Gauge::new(name, help));
         let ig = |name: &str, help: &str| must(IntGauge::new(name, help));
         let m = Metrics {
-            budget_remaining: g("scrim_budget_remaining_rho", "Lifetime zCDP budget left per privacy unit"),
-            budget_spent: g("scrim_budget_spent_rho", "Lifetime zCDP budget spent per privacy unit"),
-            budget_exhausted: ig("scrim_budget_exhausted", "1 when releases stopped because the budget ran out"),
-            epoch_windows_remaining: ig("scrim_epoch_windows_remaining", "Windows left in the current epoch"),
-            release_lag: g("scrim_release_lag_seconds", "Seconds from window end to publication (last window)"),
-            last_release_time: g("scrim_last_release_timestamp_seconds", "Unix time of the last publication"),
+            budget_remaining: g(
+                "scrim_budget_remaining_rho",
+                "Lifetime zCDP budget left per privacy unit",
+            ),
+            budget_spent: g(
+                "scrim_budget_spent_rho",
+                "Lifetime zCDP budget spent per privacy unit",
+            ),
+            budget_exhausted: ig(
+                "scrim_budget_exhausted",
+                "1 when releases stopped because the budget ran out",
+            ),
+            epoch_windows_remaining: ig(
+                "scrim_epoch_windows_remaining",
+                "Windows left in the current epoch",
+            ),
+            release_lag: g(
+                "scrim_release_lag_seconds",
+                "Seconds from window end to publication (last window)",
+            ),
+            last_release_time: g(
+                "scrim_last_release_timestamp_seconds",
+                "Unix time of the last publication",
+            ),
             budget_exhaustion_eta: g(
                 "scrim_budget_exhaustion_eta_seconds",
                 "Estimated seconds until the lifetime budget cannot cover another epoch",
             ),
-            ingest_queue_depth: ig("scrim_ingest_queue_depth", "Input batches waiting for the engine"),
-            input_bytes: must(IntCounter::new("scrim_input_bytes_total", "Bytes read from all sources")),
+            ingest_queue_depth: ig(
+                "scrim_ingest_queue_depth",
+                "Input batches waiting for the engine",
+            ),
+            input_bytes: must(IntCounter::new(
+                "scrim_input_bytes_total",
+                "Bytes read from all sources",
+            )),
             tcp_connections: ig("scrim_tcp_connections", "Open TCP ingest connections"),
             windows_open: ig("scrim_windows_open", "Windows currently open"),
-            windows_closed: must(IntCounter::new("scrim_windows_closed_total", "Windows closed")),
-            watermark: g("scrim_watermark_timestamp_seconds", "Event-time watermark (Unix seconds)"),
+            windows_closed: must(IntCounter::new(
+                "scrim_windows_closed_total",
+                "Windows closed",
+            )),
+            watermark: g(
+                "scrim_watermark_timestamp_seconds",
+                "Event-time watermark (Unix seconds)",
+            ),
             registry,
             events,
             rejected,
@@ -116,7 +160,9 @@ impl Metrics {
             must(m.registry.register(c));
         }
         #[cfg(target_os = "linux")]
-        must(m.registry.register(Box::new(prometheus::process_collector::ProcessCollector::for_self())));
+        must(m.registry.register(Box::new(
+            prometheus::process_collector::ProcessCollector::for_self(),
+        )));
         // Pre-create label values so dashboards and alerts see zeros, not absent series.
         for o in ["accepted", "rejected", "late"] {
             m.events.with_label_values(&[o]).inc_by(0);
@@ -124,7 +170,9 @@ impl Metrics {
         for r in crate::engine::event::RejectReason::ALL {
             m.rejected.with_label_values(&[r.label()]).inc_by(0);
         }
-        m.rejected.with_label_values(&[crate::engine::core::REJECT_TIME_JUMP]).inc_by(0);
+        m.rejected
+            .with_label_values(&[crate::engine::core::REJECT_TIME_JUMP])
+            .inc_by(0);
         for b in ["events_per_window", "windows_per_epoch"] {
             m.dropped.with_label_values(&[b]).inc_by(0);
         }
@@ -141,14 +189,20 @@ impl Metrics {
     /// Brings counters up to date with the engine's (they only grow).
     pub fn observe(&mut self, c: &Counters) {
         let d = |now: u64, then: u64| now.saturating_sub(then);
-        self.events.with_label_values(&["accepted"]).inc_by(d(c.accepted, self.seen.accepted));
-        self.events.with_label_values(&["late"]).inc_by(d(c.late, self.seen.late));
+        self.events
+            .with_label_values(&["accepted"])
+            .inc_by(d(c.accepted, self.seen.accepted));
+        self.events
+            .with_label_values(&["late"])
+            .inc_by(d(c.late, self.seen.late));
         self.events
             .with_label_values(&["rejected"])
             .inc_by(d(c.rejected_total(), self.seen.rejected_total()));
         for (reason, n) in &c.rejected {
             let before = self.seen.rejected.get(reason).copied().unwrap_or(0);
-            self.rejected.with_label_values(&[reason]).inc_by(d(*n, before));
+            self.rejected
+                .with_label_values(&[reason])
+                .inc_by(d(*n, before));
         }
         self.dropped
             .with_label_values(&["events_per_window"])
@@ -158,9 +212,12 @@ impl Metrics {
             .inc_by(d(c.dropped_window_bound, self.seen.dropped_window_bound));
         for (stat, n) in &c.releases {
             let before = self.seen.releases.get(stat).copied().unwrap_or(0);
-            self.releases.with_label_values(&[stat]).inc_by(d(*n, before));
+            self.releases
+                .with_label_values(&[stat])
+                .inc_by(d(*n, before));
         }
-        self.windows_closed.inc_by(d(c.windows_closed, self.seen.windows_closed));
+        self.windows_closed
+            .inc_by(d(c.windows_closed, self.seen.windows_closed));
         self.seen = c.clone();
     }
 
@@ -186,9 +243,11 @@ mod tests {
     fn contract_metric_names_are_exported() {
         let mut m = Metrics::new();
         m.declare_stats(["taps"]);
-        let mut c = Counters::default();
-        c.accepted = 5;
-        c.late = 1;
+        let mut c = Counters {
+            accepted: 5,
+            late: 1,
+            ..Counters::default()
+        };
         c.rejected.insert("invalid_json", 2);
         c.releases.insert("taps".to_string(), 3);
         m.observe(&c);

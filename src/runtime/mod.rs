@@ -8,9 +8,9 @@ use crate::engine::time::Millis;
 pub fn os_noise_key() -> std::io::Result<NoiseKey> {
     use rand::TryRng;
     let mut bytes = [0u8; 32];
-    rand::rngs::SysRng
-        .try_fill_bytes(&mut bytes)
-        .map_err(|e| std::io::Error::other(format!("the OS random number generator failed: {e}")))?;
+    rand::rngs::SysRng.try_fill_bytes(&mut bytes).map_err(|e| {
+        std::io::Error::other(format!("the OS random number generator failed: {e}"))
+    })?;
     Ok(NoiseKey::from_bytes(bytes))
 }
 

@@ -47,7 +47,11 @@ pub struct LineSplitter {
 impl LineSplitter {
     /// A splitter for lines of at most `max` bytes.
     pub fn new(max: usize) -> LineSplitter {
-        LineSplitter { max, cur: Vec::new(), too_long: false }
+        LineSplitter {
+            max,
+            cur: Vec::new(),
+            too_long: false,
+        }
     }
 
     /// Feeds bytes; complete lines go to `batch`.
@@ -207,7 +211,10 @@ pub async fn tcp_source(
             }
         };
         let Ok(permit) = permits.clone().try_acquire_owned() else {
-            tracing::warn!(max_connections, "connection refused: too many open ingest connections");
+            tracing::warn!(
+                max_connections,
+                "connection refused: too many open ingest connections"
+            );
             drop(stream);
             continue;
         };
@@ -264,7 +271,9 @@ pub async fn file_source(
                 }
             }
         }
-        let Some((f, ino)) = file.as_mut() else { continue };
+        let Some((f, ino)) = file.as_mut() else {
+            continue;
+        };
         let n = {
             use tokio::io::AsyncReadExt;
             tokio::select! {
@@ -274,7 +283,10 @@ pub async fn file_source(
             }
         };
         if n > 0 {
-            let mut batch = Batch { bytes: n as u64, ..Batch::default() };
+            let mut batch = Batch {
+                bytes: n as u64,
+                ..Batch::default()
+            };
             split.feed(&buf[..n], &mut batch);
             offset += n as u64;
             // The offset saved with a batch points after its last complete line.
@@ -320,7 +332,10 @@ mod tests {
         s.feed(b"ab", &mut b);
         s.feed(b"c\r\nxyz\n0123456789abc\nok", &mut b);
         s.finish(&mut b);
-        assert_eq!(b.lines, vec![b"abc".to_vec(), b"xyz".to_vec(), b"ok".to_vec()]);
+        assert_eq!(
+            b.lines,
+            vec![b"abc".to_vec(), b"xyz".to_vec(), b"ok".to_vec()]
+        );
         assert_eq!(b.rejects, vec![RejectReason::LineTooLong]);
     }
 }

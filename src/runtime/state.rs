@@ -83,7 +83,9 @@ pub enum StateError {
         detail: String,
     },
     /// Written by a newer scrim.
-    #[error("state in {path} has format {found}, newer than this build's {supported}; run a newer scrim")]
+    #[error(
+        "state in {path} has format {found}, newer than this build's {supported}; run a newer scrim"
+    )]
     NewerFormat {
         /// meta.json.
         path: PathBuf,
@@ -103,7 +105,9 @@ pub enum StateError {
         new: String,
     },
     /// The key source differs (seeded vs OS, or another seed).
-    #[error("state in {path} was created with a different noise key ({detail}); use the same --seed (or none) as when it was created")]
+    #[error(
+        "state in {path} was created with a different noise key ({detail}); use the same --seed (or none) as when it was created"
+    )]
     KeyMismatch {
         /// meta.json.
         path: PathBuf,
@@ -136,7 +140,10 @@ pub struct StateDir {
 }
 
 fn io_err(path: &Path) -> impl FnOnce(std::io::Error) -> StateError + '_ {
-    move |source| StateError::Io { path: path.to_path_buf(), source }
+    move |source| StateError::Io {
+        path: path.to_path_buf(),
+        source,
+    }
 }
 
 fn check(kind: u8, payload: &[u8]) -> u32 {
@@ -144,7 +151,12 @@ fn check(kind: u8, payload: &[u8]) -> u32 {
     h.update(&[kind]);
     h.update(payload);
     let b = h.finalize();
-    u32::from_le_bytes([b.as_bytes()[0], b.as_bytes()[1], b.as_bytes()[2], b.as_bytes()[3]])
+    u32::from_le_bytes([
+        b.as_bytes()[0],
+        b.as_bytes()[1],
+        b.as_bytes()[2],
+        b.as_bytes()[3],
+    ])
 }
 
 fn key_fingerprint(key: &NoiseKey) -> String {
@@ -194,7 +206,11 @@ fn create_private_dir(dir: &Path) -> std::io::Result<()> {
 impl StateDir {
     /// Opens `dir`, creating it on first start. `seed` replaces the stored key (tests and
     /// replays). Returns the state, the noise key and the logged records to replay.
-    pub fn open(dir: &Path, config_fingerprint: &str, seed: Option<u64>) -> Result<(StateDir, NoiseKey, Vec<WalRecord>), StateError> {
+    pub fn open(
+        dir: &Path,
+        config_fingerprint: &str,
+        seed: Option<u64>,
+    ) -> Result<(StateDir, NoiseKey, Vec<WalRecord>), StateError> {
         create_private_dir(dir).map_err(io_err(dir))?;
         let meta_path = dir.join("meta.json");
         let key_path = dir.join("key");
@@ -203,11 +219,17 @@ impl StateDir {
             Some(s) => NoiseKey::from_seed(s),
             None if key_path.exists() => {
                 let mut bytes = Vec::new();
-                File::open(&key_path).and_then(|mut f| f.read_to_end(&mut bytes)).map_err(io_err(&key_path))?;
-                let arr: [u8; 32] = bytes.as_slice().try_into().map_err(|_| StateError::Corrupt {
-                    path: key_path.clone(),
-                    detail: format!("expected 32 bytes, found {}", bytes.len()),
-                })?;
+                File::open(&key_path)
+                    .and_then(|mut f| f.read_to_end(&mut bytes))
+                    .map_err(io_err(&key_path))?;
+                let arr: [u8; 32] =
+                    bytes
+                        .as_slice()
+                        .try_into()
+                        .map_err(|_| StateError::Corrupt {
+                            path: key_path.clone(),
+                            detail: format!("expected 32 bytes, found {}", bytes.len()),
+                        })?;
                 NoiseKey::from_bytes(arr)
             }
             None => {
@@ -225,19 +247,32 @@ impl StateDir {
         let fp = key_fingerprint(&key);
         if meta_path.exists() {
             let text = std::fs::read_to_string(&meta_path).map_err(io_err(&meta_path))?;
-            let meta: Meta = serde_json::from_str(&text)
-                .map_err(|e| StateError::Corrupt { path: meta_path.clone(), detail: e.to_string() })?;
+            let meta: Meta = serde_json::from_str(&text).map_err(|e| StateError::Corrupt {
+                path: meta_path.clone(),
+                detail: e.to_string(),
+            })?;
             if meta.format > FORMAT_VERSION {
-                return Err(StateError::NewerFormat { path: meta_path, found: meta.format, supported: FORMAT_VERSION });
+                return Err(StateError::NewerFormat {
+                    path: meta_path,
+                    found: meta.format,
+                    supported: FORMAT_VERSION,
+                });
             }
             if meta.key_fingerprint != fp {
                 return Err(StateError::KeyMismatch {
                     path: meta_path,
-                    detail: if meta.seeded { "it was seeded with another seed".into() } else { "its key file differs".into() },
+                    detail: if meta.seeded {
+                        "it was seeded with another seed".into()
+                    } else {
+                        "its key file differs".into()
+                    },
                 });
             }
             if meta.config_fingerprint != config_fingerprint {
-                return Err(StateError::ConfigChanged { old: meta.config_fingerprint, new: config_fingerprint.to_string() });
+                return Err(StateError::ConfigChanged {
+                    old: meta.config_fingerprint,
+                    new: config_fingerprint.to_string(),
+                });
             }
         } else {
             let meta = Meta {
@@ -252,7 +287,10 @@ impl StateDir {
         let (records, valid_len) = read_wal(&wal_path)?;
         // Cut a torn tail so new records follow the last valid one.
         if wal_path.exists() {
-            let f = OpenOptions::new().write(true).open(&wal_path).map_err(io_err(&wal_path))?;
+            let f = OpenOptions::new()
+                .write(true)
+                .open(&wal_path)
+                .map_err(io_err(&wal_path))?;
             f.set_len(valid_len).map_err(io_err(&wal_path))?;
             f.sync_all().map_err(io_err(&wal_path))?;
         }
@@ -260,11 +298,20 @@ impl StateDir {
         if let Ok(d) = File::open(dir) {
             let _ = d.sync_all();
         }
-        Ok((StateDir { dir: dir.to_path_buf(), wal: BufWriter::with_capacity(1 << 20, wal), dirty: false }, key, records))
+        Ok((
+            StateDir {
+                dir: dir.to_path_buf(),
+                wal: BufWriter::with_capacity(1 << 20, wal),
+                dirty: false,
+            },
+            key,
+            records,
+        ))
     }
 
     fn append(&mut self, kind: u8, payload: &[u8]) -> std::io::Result<()> {
-        let len = u32::try_from(payload.len()).map_err(|_| std::io::Error::other("record too large"))?;
+        let len =
+            u32::try_from(payload.len()).map_err(|_| std::io::Error::other("record too large"))?;
         self.wal.write_all(&len.to_le_bytes())?;
         self.wal.write_all(&check(kind, payload).to_le_bytes())?;
         self.wal.write_all(&[kind])?;
@@ -297,7 +344,11 @@ impl StateDir {
 
     /// Logs a batch of lines (and a file offset) as one record: after a crash either all
     /// of it is in the log or none, so a file source never re-reads lines the log replays.
-    pub fn log_batch(&mut self, lines: &[Vec<u8>], offset: Option<(u32, u64)>) -> std::io::Result<()> {
+    pub fn log_batch(
+        &mut self,
+        lines: &[Vec<u8>],
+        offset: Option<(u32, u64)>,
+    ) -> std::io::Result<()> {
         let size: usize = lines.iter().map(|l| l.len() + 4).sum::<usize>() + 17;
         let mut p = Vec::with_capacity(size);
         match offset {
@@ -345,14 +396,22 @@ fn read_wal(path: &Path) -> Result<(Vec<WalRecord>, u64), StateError> {
             f.read_to_end(&mut bytes).map_err(io_err(path))?;
         }
         Err(e) if e.kind() == std::io::ErrorKind::NotFound => return Ok((Vec::new(), 0)),
-        Err(e) => return Err(StateError::Io { path: path.to_path_buf(), source: e }),
+        Err(e) => {
+            return Err(StateError::Io {
+                path: path.to_path_buf(),
+                source: e,
+            });
+        }
     }
     let mut out = Vec::new();
     let mut pos = 0usize;
     while pos < bytes.len() {
         let rest = &bytes[pos..];
         let torn = |detail: &str| -> Result<(Vec<WalRecord>, u64), StateError> {
-            Err(StateError::Corrupt { path: path.to_path_buf(), detail: format!("{detail} at byte {pos}") })
+            Err(StateError::Corrupt {
+                path: path.to_path_buf(),
+                detail: format!("{detail} at byte {pos}"),
+            })
         };
         if rest.len() < 9 {
             break; // torn header at the tail
@@ -373,7 +432,9 @@ fn read_wal(path: &Path) -> Result<(Vec<WalRecord>, u64), StateError> {
         }
         let rec = match kind {
             KIND_LINE => WalRecord::Line(payload.to_vec()),
-            KIND_TICK if len == 8 => WalRecord::Tick(Millis(i64::from_le_bytes(payload.try_into().unwrap_or([0; 8])))),
+            KIND_TICK if len == 8 => WalRecord::Tick(Millis(i64::from_le_bytes(
+                payload.try_into().unwrap_or([0; 8]),
+            ))),
             KIND_REJECT => WalRecord::Reject(String::from_utf8_lossy(payload).into_owned()),
             KIND_OFFSET if len == 12 => WalRecord::Offset {
                 source: u32::from_le_bytes([payload[0], payload[1], payload[2], payload[3]]),
@@ -393,9 +454,15 @@ fn read_wal(path: &Path) -> Result<(Vec<WalRecord>, u64), StateError> {
 }
 
 fn decode_batch(p: &[u8]) -> Option<WalRecord> {
-    let u32_at = |i: usize| p.get(i..i + 4).map(|b| u32::from_le_bytes([b[0], b[1], b[2], b[3]]));
+    let u32_at = |i: usize| {
+        p.get(i..i + 4)
+            .map(|b| u32::from_le_bytes([b[0], b[1], b[2], b[3]]))
+    };
     let offset = match p.first()? {
-        1 => Some((u32_at(1)?, u64::from_le_bytes(p.get(5..13)?.try_into().ok()?))),
+        1 => Some((
+            u32_at(1)?,
+            u64::from_le_bytes(p.get(5..13)?.try_into().ok()?),
+        )),
         _ => None,
     };
     let n = u32_at(13)? as usize;
@@ -414,20 +481,33 @@ pub fn published_seq(path: &Path) -> Result<Option<u64>, StateError> {
     let text = match std::fs::read(path) {
         Ok(t) => t,
         Err(e) if e.kind() == std::io::ErrorKind::NotFound => return Ok(None),
-        Err(e) => return Err(StateError::Io { path: path.to_path_buf(), source: e }),
+        Err(e) => {
+            return Err(StateError::Io {
+                path: path.to_path_buf(),
+                source: e,
+            });
+        }
     };
     let complete = text.iter().rposition(|&b| b == b'\n').map_or(0, |i| i + 1);
     if complete < text.len() {
-        let f = OpenOptions::new().write(true).open(path).map_err(io_err(path))?;
+        let f = OpenOptions::new()
+            .write(true)
+            .open(path)
+            .map_err(io_err(path))?;
         f.set_len(complete as u64).map_err(io_err(path))?;
         f.sync_all().map_err(io_err(path))?;
     }
-    let last = text[..complete].split(|&b| b == b'\n').filter(|l| !l.is_empty()).next_back();
+    let last = text[..complete]
+        .split(|&b| b == b'\n')
+        .rfind(|l| !l.is_empty());
     match last {
         None => Ok(None),
         Some(l) => {
-            let v: serde_json::Value = serde_json::from_slice(l)
-                .map_err(|e| StateError::Corrupt { path: path.to_path_buf(), detail: e.to_string() })?;
+            let v: serde_json::Value =
+                serde_json::from_slice(l).map_err(|e| StateError::Corrupt {
+                    path: path.to_path_buf(),
+                    detail: e.to_string(),
+                })?;
             Ok(v.get("seq").and_then(serde_json::Value::as_u64))
         }
     }
@@ -445,7 +525,8 @@ mod tests {
         s.log_line(b"{\"ts\":1}").unwrap();
         s.log_tick(Millis(42)).unwrap();
         s.log_offset(3, 99).unwrap();
-        s.log_batch(&[b"x".to_vec(), b"yz".to_vec()], Some((1, 7))).unwrap();
+        s.log_batch(&[b"x".to_vec(), b"yz".to_vec()], Some((1, 7)))
+            .unwrap();
         s.log_batch(&[], None).unwrap();
         s.sync().unwrap();
         drop(s);
@@ -460,9 +541,18 @@ mod tests {
             vec![
                 WalRecord::Line(b"{\"ts\":1}".to_vec()),
                 WalRecord::Tick(Millis(42)),
-                WalRecord::Offset { source: 3, offset: 99 },
-                WalRecord::Batch { lines: vec![b"x".to_vec(), b"yz".to_vec()], offset: Some((1, 7)) },
-                WalRecord::Batch { lines: vec![], offset: None },
+                WalRecord::Offset {
+                    source: 3,
+                    offset: 99
+                },
+                WalRecord::Batch {
+                    lines: vec![b"x".to_vec(), b"yz".to_vec()],
+                    offset: Some((1, 7))
+                },
+                WalRecord::Batch {
+                    lines: vec![],
+                    offset: None
+                },
             ]
         );
     }
@@ -475,21 +565,37 @@ mod tests {
         s.log_line(b"b").unwrap();
         s.sync().unwrap();
         drop(s);
-        assert!(matches!(StateDir::open(dir.path(), "other", Some(1)), Err(StateError::ConfigChanged { .. })));
-        assert!(matches!(StateDir::open(dir.path(), "fp", Some(2)), Err(StateError::KeyMismatch { .. })));
-        assert!(matches!(StateDir::open(dir.path(), "fp", None), Err(StateError::KeyMismatch { .. })));
+        assert!(matches!(
+            StateDir::open(dir.path(), "other", Some(1)),
+            Err(StateError::ConfigChanged { .. })
+        ));
+        assert!(matches!(
+            StateDir::open(dir.path(), "fp", Some(2)),
+            Err(StateError::KeyMismatch { .. })
+        ));
+        assert!(matches!(
+            StateDir::open(dir.path(), "fp", None),
+            Err(StateError::KeyMismatch { .. })
+        ));
         // Flip a byte inside the first record: corruption, not a torn tail.
         let wal = dir.path().join("wal");
         let mut bytes = std::fs::read(&wal).unwrap();
         bytes[9] ^= 0xff;
         std::fs::write(&wal, &bytes).unwrap();
-        let err = StateDir::open(dir.path(), "fp", Some(1)).err().expect("corrupt");
+        let err = StateDir::open(dir.path(), "fp", Some(1))
+            .err()
+            .expect("corrupt");
         assert!(matches!(err, StateError::Corrupt { .. }), "{err}");
         // A newer format.
         let meta = dir.path().join("meta.json");
-        let text = std::fs::read_to_string(&meta).unwrap().replace("\"format\": 1", "\"format\": 99");
+        let text = std::fs::read_to_string(&meta)
+            .unwrap()
+            .replace("\"format\": 1", "\"format\": 99");
         std::fs::write(&meta, text).unwrap();
-        assert!(matches!(StateDir::open(dir.path(), "fp", Some(1)), Err(StateError::NewerFormat { .. })));
+        assert!(matches!(
+            StateDir::open(dir.path(), "fp", Some(1)),
+            Err(StateError::NewerFormat { .. })
+        ));
     }
 
     #[test]
