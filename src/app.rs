@@ -125,7 +125,9 @@ pub struct ReplaySummary {
 
 /// `(active units, per-unit table bytes)` of a unit-level engine.
 fn unit_table(engine: &Engine) -> Option<(usize, usize)> {
-    engine.bounder().map(|b| (b.active_units(), b.unit_table_bytes()))
+    engine
+        .bounder()
+        .map(|b| (b.active_units(), b.unit_table_bytes()))
 }
 
 /// Feeds every line of `input` to `engine`, handing releases to `sink` as they appear.
@@ -180,14 +182,15 @@ fn pump_parallel<R: Read>(
 ) -> std::io::Result<(u64, u64)> {
     let decoder = engine.line_decoder();
     let mut n_releases = 0u64;
-    let n_lines = crate::runtime::parse_pool::decode_in_order(input, &decoder, threads, |parsed| {
-        engine.handle_parsed(parsed);
-        while let Some(r) = engine.poll_release() {
-            sink.publish(&r)?;
-            n_releases += 1;
-        }
-        Ok(())
-    })?;
+    let n_lines =
+        crate::runtime::parse_pool::decode_in_order(input, &decoder, threads, |parsed| {
+            engine.handle_parsed(parsed);
+            while let Some(r) = engine.poll_release() {
+                sink.publish(&r)?;
+                n_releases += 1;
+            }
+            Ok(())
+        })?;
     engine.finish();
     while let Some(r) = engine.poll_release() {
         sink.publish(&r)?;

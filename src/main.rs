@@ -106,8 +106,22 @@ fn run(cli: Cli) -> Result<(), AppError> {
             app::demo(&args, &mut std::io::stdout().lock())?;
             Ok(())
         }
-        Command::Replay { config, out, state, seed, threads, input } => {
-            let s = app::replay(&config, out.as_deref(), state.as_deref(), key_source(seed), &input, usize::from(threads))?;
+        Command::Replay {
+            config,
+            out,
+            state,
+            seed,
+            threads,
+            input,
+        } => {
+            let s = app::replay(
+                &config,
+                out.as_deref(),
+                state.as_deref(),
+                key_source(seed),
+                &input,
+                usize::from(threads),
+            )?;
             eprintln!(
                 "scrim replay: {} lines, {} accepted, {} rejected, {} late, {} releases -> {}",
                 s.lines,
@@ -120,7 +134,11 @@ fn run(cli: Cli) -> Result<(), AppError> {
             if let Some((n_units, n_bytes)) = s.unit_table {
                 eprintln!(
                     "scrim replay: unit table: {n_units} units, {} bytes/unit",
-                    if n_units == 0 { 0 } else { n_bytes.div_ceil(n_units) }
+                    if n_units == 0 {
+                        0
+                    } else {
+                        n_bytes.div_ceil(n_units)
+                    }
                 );
             }
             match s.halted {

@@ -312,7 +312,10 @@ impl Engine {
 
     /// A parser detached from the engine, for parsing lines on worker threads.
     pub fn line_decoder(&self) -> LineDecoder {
-        LineDecoder { parser: Arc::clone(&self.parser), key: self.key.clone() }
+        LineDecoder {
+            parser: Arc::clone(&self.parser),
+            key: self.key.clone(),
+        }
     }
 
     fn reject(&mut self, label: &'static str) {
