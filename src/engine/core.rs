@@ -541,11 +541,21 @@ impl Engine {
         let origin = self.origin.unwrap_or(w);
         let epoch_start = origin + (epoch * u64::from(self.plan.epoch_windows)) as i64;
         for (si, s) in self.plan.stats.iter().enumerate() {
-            for g in 0..s.groups.len() {
-                for scope in &s.scopes {
+            // A scope's window bounds are the same for every group: format them once per
+            // close (per record they were a third of closing 100,000 groups, issue 9).
+            let bounds: Vec<(String, String)> = s
+                .scopes
+                .iter()
+                .map(|scope| {
                     let range = scope.range(leaf);
                     let start = Millis((epoch_start + i64::from(range.first)) * self.window_ms);
                     let end = Millis((epoch_start + i64::from(range.last) + 1) * self.window_ms);
+                    (start.to_rfc3339(), end.to_rfc3339())
+                })
+                .collect();
+            for g in 0..s.groups.len() {
+                for (scope, (start, end)) in s.scopes.iter().zip(&bounds) {
+                    let range = scope.range(leaf);
                     let series = &state.series[si];
                     let est: Vec<(Vec<Dd>, f64)> = series
                         .mechs
@@ -581,15 +591,19 @@ impl Engine {
                         .into_iter()
                         .map(|(f, k)| (f.to_string(), k.to_string()))
                         .collect();
-                    rec.window_start = start.to_rfc3339();
-                    rec.window_end = end.to_rfc3339();
+                    rec.window_start = start.clone();
+                    rec.window_end = end.clone();
                     rec.epoch = epoch;
                     rec.leaf = leaf;
                     rec.guarantee = self.guarantee.clone();
                     rec.seeded = self.opts.seeded;
-                    *self.counters.releases.entry(s.name.clone()).or_insert(0) += 1;
                     self.outbox.push_back(rec);
                 }
+            }
+            // Counted once per statistic rather than per record (no name clone per record).
+            let n_records = (s.groups.len() * s.scopes.len()) as u64;
+            if n_records > 0 {
+                *self.counters.releases.entry(s.name.clone()).or_insert(0) += n_records;
             }
         }
     }
