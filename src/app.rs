@@ -183,8 +183,8 @@ fn pump_parallel<R: Read>(
     let decoder = engine.line_decoder();
     let mut n_releases = 0u64;
     let n_lines =
-        crate::runtime::parse_pool::decode_in_order(input, &decoder, threads, |parsed| {
-            engine.handle_parsed(parsed);
+        crate::runtime::parse_pool::decode_in_order(input, &decoder, threads, |prepared| {
+            engine.handle_prepared(prepared);
             while let Some(r) = engine.poll_release() {
                 sink.publish(&r)?;
                 n_releases += 1;

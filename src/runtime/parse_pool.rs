@@ -3,11 +3,12 @@
 //! cannot depend on the number of threads.
 //!
 //! # Why this is deterministic
-//! Parsing a line ([`LineDecoder::decode`]) is a pure function of the line's bytes and the
-//! engine's key: it reads no state the engine changes. The input is cut into chunks of
+//! Preparing a line ([`LineDecoder::prepare`]: parsing, the keyed unit hash and the
+//! bounding priority) is a pure function of the line's bytes and the engine's key: it reads
+//! no state the engine changes. The input is cut into chunks of
 //! whole lines, numbered in reading order; each chunk's verdicts come back in line order
 //! and the caller consumes chunk `k` only after chunk `k - 1`. The engine therefore sees
-//! exactly the sequence `handle_parsed(decode(line))` that `handle_line(line)` would give,
+//! exactly the sequence `handle_prepared(prepare(line))` that `handle_line(line)` gives,
 //! for any thread count and any scheduling.
 //!
 //! # Why the calling thread parses too
@@ -17,24 +18,29 @@
 //! parse and the engine work between them.
 //!
 //! # Memory
-//! At most `2 · threads + 2` chunks of [`CHUNK_BYTES`] are in flight (read but not yet
-//! consumed), so memory does not grow with the input; buffers are recycled. A single line
+//! At most [`CHUNKS_IN_FLIGHT_PER_THREAD`] × `threads` chunks of [`CHUNK_BYTES`] are in
+//! flight (read but not yet consumed), so memory does not grow with the input (about 2 MiB
+//! per thread with their verdicts); buffers are recycled. A single line
 //! longer than a chunk grows its chunk until its newline, as `BufRead::read_until` would.
 
 use std::collections::{BTreeMap, VecDeque};
 use std::io::{self, Read};
 use std::sync::{Condvar, Mutex, MutexGuard, PoisonError};
 
-use crate::engine::core::LineDecoder;
-use crate::engine::event::{Event, Rejection};
+use crate::engine::core::{LineDecoder, Prepared};
 
-/// Target size of one chunk of input. About 1,700 demo lines: large enough that the two lock
-/// operations per chunk cost nothing next to parsing it, small enough that the in-flight
-/// chunks stay far below a megabyte per thread and keep every thread busy at the end.
-pub const CHUNK_BYTES: usize = 256 * 1024;
+/// Target size of one chunk of input: about 450 demo lines, a millisecond of parsing. The
+/// few lock operations per chunk cost nothing next to that, and a chunk held by a thread
+/// the OS has descheduled is small enough that the others are not starved for long.
+pub const CHUNK_BYTES: usize = 64 * 1024;
 
-/// The parser's verdict on one line.
-type Verdict = Result<Event, Rejection>;
+/// Read-ahead per thread, in chunks. The window lets the calling thread parse far ahead
+/// when a worker holding the next chunk is descheduled (on a loaded machine), instead of
+/// waiting for it; 16 chunks are about 1 MiB of input.
+pub const CHUNKS_IN_FLIGHT_PER_THREAD: u64 = 16;
+
+/// A line ready for the engine: the parser's verdict (and bounding priority).
+type Verdict = Prepared;
 
 /// Whole lines read from the input, with the position of the chunk in reading order.
 struct Job {
@@ -145,7 +151,7 @@ impl<R: Read> ChunkReader<R> {
     }
 }
 
-/// Decodes every line of `job.bytes` into `job.verdicts`, with the line rules of
+/// Prepares every line of `job.bytes` into `job.verdicts`, with the line rules of
 /// [`crate::app::pump`]: a line ends at `\n` (the last one may lack it) and one trailing
 /// `\r` is removed.
 fn decode_job(decoder: &LineDecoder, job: &mut Job) {
@@ -155,7 +161,7 @@ fn decode_job(decoder: &LineDecoder, job: &mut Job) {
     let body = bytes.strip_suffix(b"\n").unwrap_or(bytes);
     for line in body.split(|b| *b == b'\n') {
         let line = line.strip_suffix(b"\r").unwrap_or(line);
-        job.verdicts.push(decoder.decode(line));
+        job.verdicts.push(decoder.prepare(line));
     }
 }
 
@@ -180,12 +186,12 @@ fn worker(shared: &Shared, decoder: &LineDecoder) {
     }
 }
 
-/// Reads every line of `input`, decodes the lines on `threads` threads (the calling thread
-/// included; `threads <= 1` decodes on the calling thread alone) and calls `consume` with
-/// each line's verdict in input order. Returns the number of lines.
+/// Reads every line of `input`, prepares the lines on `threads` threads (the calling
+/// thread included; `threads <= 1` prepares on the calling thread alone) and calls
+/// `consume` with each prepared line in input order. Returns the number of lines.
 ///
 /// Stops at the first error of `input` or `consume` and returns it; lines after it are not
-/// consumed. Equivalent to calling `consume(decoder.decode(line))` for every line that
+/// consumed. Equivalent to calling `consume(decoder.prepare(line))` for every line that
 /// `BufRead::read_until(b'\n')` would yield, with a trailing `\n` and then `\r` removed.
 pub fn decode_in_order<R: Read>(
     input: R,
@@ -204,7 +210,7 @@ pub fn decode_in_order<R: Read>(
         progress: Condvar::new(),
     };
     let n_workers = threads.saturating_sub(1);
-    let max_in_flight = 2 * threads.max(1) as u64 + 2;
+    let max_in_flight = CHUNKS_IN_FLIGHT_PER_THREAD * threads.max(1) as u64;
     std::thread::scope(|scope| {
         for _ in 0..n_workers {
             scope.spawn(|| worker(&shared, decoder));
@@ -304,7 +310,7 @@ mod tests {
             }
             let body = line.strip_suffix(b"\n").unwrap_or(&line);
             let body = body.strip_suffix(b"\r").unwrap_or(body);
-            out.push(decoder.decode(body));
+            out.push(decoder.prepare(body));
         }
     }
 
@@ -365,7 +371,8 @@ mod tests {
             "the input must span several chunks"
         );
         let expected = sequential(&input, &decoder);
-        assert!(expected.iter().any(Result::is_err) && expected.iter().any(Result::is_ok));
+        assert!(expected.iter().any(|p| p.parsed().is_err()));
+        assert!(expected.iter().any(|p| p.parsed().is_ok()));
         for threads in [1, 2, 3] {
             for step in [usize::MAX, 4093] {
                 assert_eq!(
