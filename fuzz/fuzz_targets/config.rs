@@ -12,7 +12,9 @@ use scrim::engine::noise::NoiseKey;
 use scrim::engine::{Engine, EngineOptions};
 
 fuzz_target!(|data: &[u8]| {
-    let Ok(text) = std::str::from_utf8(data) else { return };
+    let Ok(text) = std::str::from_utf8(data) else {
+        return;
+    };
     match Config::from_toml_str(text) {
         Ok(config) => {
             // Planning and engine construction must not panic for any accepted config;

@@ -19,7 +19,16 @@ fn parser() -> &'static LineParser {
             time_field: "ts".into(),
             unit_field: Some("card".into()),
             categories: vec![
-                ("zone".into(), list(&["harbour", "old-town", "uplands", "riverside", "airport-link"])),
+                (
+                    "zone".into(),
+                    list(&[
+                        "harbour",
+                        "old-town",
+                        "uplands",
+                        "riverside",
+                        "airport-link",
+                    ]),
+                ),
                 ("mode".into(), list(&["tram", "ferry", "bus"])),
             ],
             numbers: list(&["fare_cents", "trip_km", "trip_minutes", "transfers"]),
@@ -31,10 +40,21 @@ fn parser() -> &'static LineParser {
 
 /// Stand-in for the engine's keyed unit hash (any function works for the parser).
 fn unit_hash(bytes: &[u8]) -> u64 {
-    bytes.iter().fold(0xcbf2_9ce4_8422_2325u64, |h, b| (h ^ u64::from(*b)).wrapping_mul(0x0100_0000_01b3))
+    bytes.iter().fold(0xcbf2_9ce4_8422_2325u64, |h, b| {
+        (h ^ u64::from(*b)).wrapping_mul(0x0100_0000_01b3)
+    })
 }
 
-const FIELDS: [&str; 8] = ["ts", "card", "zone", "mode", "fare_cents", "trip_km", "trip_minutes", "transfers"];
+const FIELDS: [&str; 8] = [
+    "ts",
+    "card",
+    "zone",
+    "mode",
+    "fare_cents",
+    "trip_km",
+    "trip_minutes",
+    "transfers",
+];
 
 fuzz_target!(|data: &[u8]| {
     match parser().parse(data, &unit_hash) {
@@ -42,12 +62,18 @@ fuzz_target!(|data: &[u8]| {
             // A valid event has one value per schema field and finite numbers.
             assert_eq!(event.categories.len(), 2);
             assert_eq!(event.numbers.len(), 4);
-            assert!(event.numbers.iter().all(|v| v.is_finite()), "non-finite number accepted");
+            assert!(
+                event.numbers.iter().all(|v| v.is_finite()),
+                "non-finite number accepted"
+            );
         }
         Err(rejection) => {
             assert!(RejectReason::ALL.contains(&rejection.reason));
             if let Some(field) = &rejection.field {
-                assert!(FIELDS.contains(&field.as_ref()), "rejection names {field}, not a schema field");
+                assert!(
+                    FIELDS.contains(&field.as_ref()),
+                    "rejection names {field}, not a schema field"
+                );
             }
             assert!(!rejection.to_string().is_empty());
         }
