@@ -759,13 +759,33 @@ fn audit_linear() {
     audit_kind("linear", N_SELECT, N_EVAL);
 }
 
-/// The larger audit for docs/hardening.md, every kind and mechanism with 10,000 selection
-/// runs and 100,000 evaluation runs per side:
-/// `cargo test --release --test audit -- --ignored audit_large --nocapture`.
+/// Runs per side in the larger audit of docs/hardening.md.
+const N_SELECT_LARGE: u64 = 10_000;
+const N_EVAL_LARGE: u64 = 100_000;
+
+// The larger audit for docs/hardening.md, one test per kind so that they can share the
+// cores: `cargo test --release --test audit -- --ignored audit_large --nocapture`.
+
 #[test]
 #[ignore]
-fn audit_large() {
-    for kind in ["count", "sum", "mean", "linear"] {
-        audit_kind(kind, 10_000, 100_000);
-    }
+fn audit_large_count() {
+    audit_kind("count", N_SELECT_LARGE, N_EVAL_LARGE);
+}
+
+#[test]
+#[ignore]
+fn audit_large_sum() {
+    audit_kind("sum", N_SELECT_LARGE, N_EVAL_LARGE);
+}
+
+#[test]
+#[ignore]
+fn audit_large_mean() {
+    audit_kind("mean", N_SELECT_LARGE, N_EVAL_LARGE);
+}
+
+#[test]
+#[ignore]
+fn audit_large_linear() {
+    audit_kind("linear", N_SELECT_LARGE, N_EVAL_LARGE);
 }
