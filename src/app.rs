@@ -275,7 +275,8 @@ fn replay_with_state(
             danger_keep_truth: false,
         },
     )?;
-    // Lines logged after the last offset record are re-read from the input instead.
+    // Lines logged after the last offset record are re-read from the input instead (only
+    // logs written before batches were used hold such `Line` records).
     let last_offset_at = records
         .iter()
         .rposition(|r| matches!(r, WalRecord::Offset { .. }));
@@ -335,6 +336,7 @@ fn replay_with_state(
             .map_err(io(format!("seeking input {}", input.display())))?;
         let mut reader = BufReader::with_capacity(1 << 20, f);
         let mut line = Vec::with_capacity(4096);
+        let mut pending: Vec<Vec<u8>> = Vec::new();
         let wal_err = |e: std::io::Error| AppError::Io {
             context: format!("writing state in {}", state_dir.display()),
             source: e,
@@ -356,14 +358,19 @@ fn replay_with_state(
             if let Some(b) = body.strip_suffix(b"\r") {
                 body = b;
             }
-            st.log_line(body).map_err(wal_err)?;
             engine.handle_line(body);
+            pending.push(body.to_vec());
             let mut fresh = Vec::new();
             while let Some(r) = engine.poll_release() {
                 fresh.push(r);
             }
-            if !fresh.is_empty() || lines.is_multiple_of(4096) {
-                st.log_offset(0, offset).map_err(wal_err)?;
+            // Lines are logged in batches that carry the input offset after them, so a
+            // crash loses either a whole batch (re-read from the previous offset) or
+            // nothing. Logging lines one by one with separate offset records let a restart
+            // re-read lines that were already in the log, and count them twice.
+            if !fresh.is_empty() || pending.len() >= 4096 {
+                st.log_batch(&pending, Some((0, offset))).map_err(wal_err)?;
+                pending.clear();
             }
             if !fresh.is_empty() {
                 // Write-ahead: the inputs behind these releases are durable first.
@@ -375,7 +382,7 @@ fn replay_with_state(
                 n_releases += fresh.len() as u64;
             }
         }
-        st.log_offset(0, offset).map_err(wal_err)?;
+        st.log_batch(&pending, Some((0, offset))).map_err(wal_err)?;
         st.log_finish().map_err(wal_err)?;
         st.sync().map_err(wal_err)?;
         engine.finish();

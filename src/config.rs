@@ -210,8 +210,17 @@ pub struct LinearConfig {
     /// engine normalise each feature by its own scale, so a feature with a small range is
     /// not drowned by noise sized for the largest one.
     pub feature_bounds: Option<Vec<f64>>,
+    /// Optional per-feature ranges `lo ≤ x_j ≤ hi` (one per feature, finite, lo < hi, inside
+    /// ±`feature_norm_bound`; not together with `feature_bounds`). With an intercept the
+    /// engine accumulates the moments centred on each range's midpoint, so a feature whose
+    /// values sit far from 0 (a distance, a count) is not drowned by noise sized for a
+    /// symmetric bound twice as wide.
+    pub feature_ranges: Option<Vec<(f64, f64)>>,
     /// Clip of |target| (finite, > 0).
     pub target_bound: f64,
+    /// Optional range `lo ≤ y ≤ hi` of the target, inside ±`target_bound` (centred like the
+    /// feature ranges when the model has an intercept).
+    pub target_range: Option<(f64, f64)>,
     /// How the model is fitted from the noisy statistics.
     pub fit: FitConfig,
 }
@@ -544,9 +553,15 @@ pub struct RawStat {
     /// `feature_bounds` (linear, optional).
     #[serde(default, deserialize_with = "strict::nums")]
     pub feature_bounds: Option<Vec<f64>>,
+    /// `feature_ranges` (linear, optional).
+    #[serde(default, deserialize_with = "strict::num_lists")]
+    pub feature_ranges: Option<Vec<Vec<f64>>>,
     /// `target_bound` (linear).
     #[serde(default, deserialize_with = "strict::num")]
     pub target_bound: Option<f64>,
+    /// `target_range` (linear, optional).
+    #[serde(default, deserialize_with = "strict::nums")]
+    pub target_range: Option<Vec<f64>>,
     /// `fit` (linear).
     #[serde(default, deserialize_with = "strict::text")]
     pub fit: Option<String>,
@@ -744,6 +759,15 @@ mod strict {
     }
     pub(super) fn nums<'de, D: Deserializer<'de>>(d: D) -> Result<Option<Vec<f64>>, D::Error> {
         Ok(Option::<Vec<Num>>::deserialize(d)?.map(|v| v.into_iter().map(|x| x.0).collect()))
+    }
+    pub(super) fn num_lists<'de, D: Deserializer<'de>>(
+        d: D,
+    ) -> Result<Option<Vec<Vec<f64>>>, D::Error> {
+        Ok(Option::<Vec<Vec<Num>>>::deserialize(d)?.map(|v| {
+            v.into_iter()
+                .map(|l| l.into_iter().map(|x| x.0).collect())
+                .collect()
+        }))
     }
     pub(super) fn ints<'de, D: Deserializer<'de>>(d: D) -> Result<Option<Vec<i64>>, D::Error> {
         Ok(Option::<Vec<Int>>::deserialize(d)?.map(|v| v.into_iter().map(|x| x.0).collect()))
@@ -1512,7 +1536,9 @@ fn kind_keys(kind: &str) -> &'static [&'static str] {
             "intercept",
             "feature_norm_bound",
             "feature_bounds",
+            "feature_ranges",
             "target_bound",
+            "target_range",
             "fit",
             "ridge_lambda",
             "l1_radius",
@@ -1531,7 +1557,9 @@ fn present_kind_keys(raw: &RawStat) -> Vec<&'static str> {
         ("intercept", raw.intercept.is_some()),
         ("feature_norm_bound", raw.feature_norm_bound.is_some()),
         ("feature_bounds", raw.feature_bounds.is_some()),
+        ("feature_ranges", raw.feature_ranges.is_some()),
         ("target_bound", raw.target_bound.is_some()),
+        ("target_range", raw.target_range.is_some()),
         ("fit", raw.fit.is_some()),
         ("ridge_lambda", raw.ridge_lambda.is_some()),
         ("l1_radius", raw.l1_radius.is_some()),
@@ -1844,6 +1872,46 @@ fn resolve_linear(
         &key("target_bound"),
         "a clipping bound",
     )?;
+    let feature_ranges = match &raw.feature_ranges {
+        None => None,
+        Some(ranges) => {
+            if feature_bounds.is_some() {
+                return Err(not_allowed(
+                    key("feature_ranges"),
+                    "give either feature_bounds (|x| ≤ b) or feature_ranges ([lo, hi]) per feature, not both",
+                ));
+            }
+            if ranges.len() != features.len() {
+                return Err(invalid(
+                    key("feature_ranges"),
+                    format!(
+                        "{} ranges for {} features: give one [lo, hi] per feature, in the order of `features`",
+                        ranges.len(),
+                        features.len()
+                    ),
+                ));
+            }
+            let mut out = Vec::with_capacity(ranges.len());
+            for (r_idx, r) in ranges.iter().enumerate() {
+                out.push(bounded_range(
+                    r,
+                    &format!("{}[{r_idx}]", key("feature_ranges")),
+                    feature_norm_bound,
+                    "feature_norm_bound",
+                )?);
+            }
+            Some(out)
+        }
+    };
+    let target_range = match &raw.target_range {
+        None => None,
+        Some(r) => Some(bounded_range(
+            r,
+            &key("target_range"),
+            target_bound,
+            "target_bound",
+        )?),
+    };
     let fit = match raw.fit.as_deref().unwrap_or("ridge") {
         "ridge" => {
             if raw.l1_radius.is_some() {
@@ -1893,9 +1961,38 @@ fn resolve_linear(
         intercept: raw.intercept.unwrap_or(true),
         feature_norm_bound,
         feature_bounds,
+        feature_ranges,
         target_bound,
+        target_range,
         fit,
     })
+}
+
+/// A `[lo, hi]` clamp range of the linear kind: two finite numbers, lo < hi, both within
+/// ±`bound` (the L2 or |y| clip it narrows, named `bound_key` in the message).
+fn bounded_range(
+    r: &[f64],
+    at: &str,
+    bound: f64,
+    bound_key: &str,
+) -> Result<(f64, f64), ConfigError> {
+    match *r {
+        [lo, hi] if lo.is_finite() && hi.is_finite() && lo < hi => {
+            if lo < -bound || hi > bound {
+                return Err(invalid(
+                    at.to_string(),
+                    format!(
+                        "[{lo}, {hi}] reaches outside ±{bound} ({bound_key}): the range narrows that clip, so keep it within it or raise {bound_key}"
+                    ),
+                ));
+            }
+            Ok((lo, hi))
+        }
+        _ => Err(invalid(
+            at.to_string(),
+            format!("{r:?} is not a range: write [lo, hi] with two finite numbers and lo < hi"),
+        )),
+    }
 }
 
 /// The numeric fields a stat reads, in order.
@@ -2209,7 +2306,18 @@ impl Config {
                             w.float("stat.feature_bound", *v);
                         }
                     }
+                    if let Some(ranges) = &lin.feature_ranges {
+                        w.count("stat.feature_ranges.len", ranges.len());
+                        for (lo, hi) in ranges {
+                            w.float("stat.feature_range.lo", *lo);
+                            w.float("stat.feature_range.hi", *hi);
+                        }
+                    }
                     w.float("stat.target_bound", lin.target_bound);
+                    if let Some((lo, hi)) = lin.target_range {
+                        w.float("stat.target_range.lo", lo);
+                        w.float("stat.target_range.hi", hi);
+                    }
                     match lin.fit {
                         FitConfig::Ridge { lambda } => w.float("stat.fit.ridge", lambda),
                         FitConfig::L1 { radius } => w.float("stat.fit.l1", radius),

@@ -288,8 +288,92 @@ fn demo_config_loads_and_matches_the_scenario() {
     let StatKind::Linear(lin) = &c.stats[4].kind else {
         panic!("trip_model should be linear")
     };
-    assert_eq!((lin.feature_norm_bound, lin.target_bound), (30.0, 100.0));
-    assert_eq!(lin.feature_bounds.as_deref(), Some(&[30.0, 4.0][..]));
+    assert_eq!((lin.feature_norm_bound, lin.target_bound), (30.0, 120.0));
+    assert_eq!(lin.feature_bounds, None);
+    assert_eq!(
+        lin.feature_ranges.as_deref(),
+        Some(&[(0.0, 30.0), (0.0, 4.0)][..])
+    );
+    assert_eq!(lin.target_range, Some((0.0, 120.0)));
+}
+
+/// A minimal config with one linear stat and extra keys `extra` in its table.
+fn linear_with(extra: &str) -> String {
+    format!(
+        r#"
+[input]
+time_field = "ts"
+[window]
+length = "1h"
+[privacy]
+rho_per_epoch = 1.0
+delta = 1e-9
+epoch_windows = 24
+[[stats]]
+name = "m"
+kind = "linear"
+target = "y"
+features = ["a", "b"]
+feature_norm_bound = 10.0
+target_bound = 50.0
+{extra}
+"#
+    )
+}
+
+#[test]
+fn linear_ranges_are_validated_with_the_key_and_the_fix() {
+    let cases = [
+        (
+            "feature_ranges = [[0, 5]]",
+            "stats[0].feature_ranges",
+            "1 ranges for 2 features",
+        ),
+        (
+            "feature_ranges = [[0, 5], [3, 3]]",
+            "stats[0].feature_ranges[1]",
+            "lo < hi",
+        ),
+        (
+            "feature_ranges = [[0, 5], [0, 11]]",
+            "stats[0].feature_ranges[1]",
+            "outside ±10 (feature_norm_bound)",
+        ),
+        (
+            "feature_ranges = [[0, 5], [0, 1]]\nfeature_bounds = [5, 1]",
+            "stats[0].feature_ranges",
+            "not both",
+        ),
+        (
+            "target_range = [-60, 0]",
+            "stats[0].target_range",
+            "outside ±50 (target_bound)",
+        ),
+        ("target_range = [1]", "stats[0].target_range", "not a range"),
+    ];
+    for (extra, key, reason) in cases {
+        let err = Config::from_toml_str(&linear_with(extra))
+            .expect_err(extra)
+            .to_string();
+        assert!(err.contains(key) && err.contains(reason), "{extra}: {err}");
+    }
+    let ok = Config::from_toml_str(&linear_with(
+        "feature_ranges = [[0, 5], [-1, 1]]\ntarget_range = [0, 50]",
+    ))
+    .expect("valid ranges");
+    let StatKind::Linear(lin) = &ok.stats[0].kind else {
+        panic!("linear")
+    };
+    assert_eq!(
+        lin.feature_ranges.as_deref(),
+        Some(&[(0.0, 5.0), (-1.0, 1.0)][..])
+    );
+    // Ranges are part of the state fingerprint (they change the sensitivity and the data).
+    let other = Config::from_toml_str(&linear_with(
+        "feature_ranges = [[0, 6], [-1, 1]]\ntarget_range = [0, 50]",
+    ))
+    .expect("valid ranges");
+    assert_ne!(ok.fingerprint(), other.fingerprint());
 }
 
 #[test]

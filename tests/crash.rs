@@ -119,10 +119,13 @@ fn crash_and_compare(kills: usize) {
     if got != expected {
         let (g, e): (Vec<_>, Vec<_>) = (got.lines().collect(), expected.lines().collect());
         let first = g.iter().zip(&e).position(|(a, b)| a != b);
+        let show = |v: &[&str]| first.and_then(|i| v.get(i)).map_or("", |l| l).to_string();
         panic!(
-            "releases differ after {killed} kills: {} vs {} lines, first difference at line {first:?}",
+            "releases differ after {killed} kills: {} vs {} lines, first difference at line {first:?}:\n got {}\nwant {}",
             g.len(),
-            e.len()
+            e.len(),
+            show(&g),
+            show(&e)
         );
     }
     // Every epoch in the output was paid for: the demo's lifetime covers 4 epochs.

@@ -432,3 +432,129 @@ fn slow_engine_makes_the_sender_block_instead_of_growing_memory() {
         "daemon RSS {rss_kib} KiB while the sender is blocked after {written} bytes"
     );
 }
+
+/// A unit-level config whose lifetime pays for 2 epochs of 4 one-second windows, with a TCP
+/// source that closes idle connections after 1 s.
+fn unit_config(dir: &Path) -> String {
+    format!(
+        r#"
+[input]
+time_field = "ts"
+unit_field = "card"
+
+[window]
+length = "1s"
+allowed_lateness = "0s"
+idle_close = "1s"
+
+[privacy]
+rho_per_epoch = 0.5
+lifetime_rho = 1.0
+delta = 1e-9
+epoch_windows = 4
+max_events_per_window = 2
+max_windows_per_epoch = 4
+
+[[stats]]
+name = "taps"
+kind = "count"
+
+[[sources]]
+kind = "tcp"
+listen = "127.0.0.1:0"
+idle_timeout = "1s"
+
+[http]
+listen = "127.0.0.1:0"
+
+[output]
+dir = "{out}"
+
+[state]
+dir = "{state}"
+"#,
+        out = dir.join("out").display(),
+        state = dir.join("state").display()
+    )
+}
+
+#[test]
+fn idle_connections_are_closed_and_the_budget_eta_counts_down() {
+    let dir = tempfile::tempdir().unwrap();
+    let d = start(dir.path(), &unit_config(dir.path()), &[]);
+    wait_until(|| get(&d.http, "/readyz").0 == 200, 20, "readyz");
+
+    // Before any event: a whole epoch ahead, and the lifetime pays for 2 × 4 windows of 1 s.
+    let m = get(&d.http, "/metrics").1;
+    assert_eq!(metric(&m, "scrim_epoch_windows_remaining"), 4.0, "{m}");
+    assert_eq!(
+        metric(&m, "scrim_budget_exhaustion_eta_seconds"),
+        8.0,
+        "{m}"
+    );
+
+    // Idle timeout: a silent connection is closed by the daemon after ~1 s. One that sent a
+    // line and then went quiet is closed too, and its line still counts.
+    let mut silent = TcpStream::connect(&d.tcp).unwrap();
+    let mut talker = TcpStream::connect(&d.tcp).unwrap();
+    writeln!(talker, "{{\"ts\":{},\"card\":\"c1\"}}", now_ms()).unwrap();
+    talker.flush().unwrap();
+    wait_until(
+        || metric(&get(&d.http, "/metrics").1, "scrim_tcp_connections") == 2.0,
+        10,
+        "two connections open",
+    );
+    let opened = Instant::now();
+    for s in [&mut silent, &mut talker] {
+        s.set_read_timeout(Some(Duration::from_secs(10))).unwrap();
+        let mut buf = [0u8; 16];
+        // EOF (Ok(0)) or a reset: either way the daemon hung up, well before our 10 s.
+        let n = s.read(&mut buf).unwrap_or(0);
+        assert_eq!(n, 0, "the daemon sends nothing on an ingest connection");
+    }
+    let waited = opened.elapsed();
+    assert!(
+        waited < Duration::from_secs(8),
+        "idle connections closed after {waited:?}"
+    );
+    wait_until(
+        || metric(&get(&d.http, "/metrics").1, "scrim_tcp_connections") == 0.0,
+        10,
+        "connections closed",
+    );
+    wait_until(
+        || {
+            metric(
+                &get(&d.http, "/metrics").1,
+                "scrim_events_total{outcome=\"accepted\"}",
+            ) == 1.0
+        },
+        10,
+        "the talker's line counted",
+    );
+
+    // The ETA follows the windows: once the first window has closed, the current epoch is
+    // charged (spent 0.5), and what remains is its T − closed windows plus one whole epoch.
+    wait_until(
+        || metric(&get(&d.http, "/metrics").1, "scrim_budget_spent_rho") == 0.5,
+        20,
+        "first epoch charged",
+    );
+    let mut conn = TcpStream::connect(&d.tcp).unwrap();
+    for _ in 0..3 {
+        writeln!(conn, "{{\"ts\":{},\"card\":\"c2\"}}", now_ms()).unwrap();
+        conn.flush().unwrap();
+        std::thread::sleep(Duration::from_millis(600));
+    }
+    let m = get(&d.http, "/metrics").1;
+    let remaining = metric(&m, "scrim_epoch_windows_remaining");
+    let spent = metric(&m, "scrim_budget_spent_rho");
+    let eta = metric(&m, "scrim_budget_exhaustion_eta_seconds");
+    assert!((1.0..=4.0).contains(&remaining), "{m}");
+    // Whole epochs left after the charged ones, plus the current epoch's rest when one is
+    // under way (remaining < 4), one second per window.
+    let whole = (1.0 - spent) / 0.5 * 4.0;
+    let current = if remaining < 4.0 { remaining } else { 0.0 };
+    assert_eq!(eta, whole + current, "{m}");
+    assert!(eta < 8.0, "the ETA went down: {m}");
+}

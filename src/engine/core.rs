@@ -752,28 +752,14 @@ fn contribute(c: &ComponentPlan, ev: &Event, slot: &mut [i128]) {
             features,
             target,
             layout,
-            feature_norm_bound,
-            target_bound,
             units,
-            feature_bounds,
             ..
         } => {
-            // Clip in value units, then normalise by powers of two (exact; see
-            // `plan::moment_unit`) so the packed moments have comparable scales.
+            // Clip in value units, then centre and normalise (see `plan::MomentUnits`) so the
+            // packed moments have comparable scales.
             let mut x: Vec<f64> = features.iter().map(|&i| ev.numbers[i]).collect();
             let mut y = ev.numbers[*target];
-            if let Some(b) = feature_bounds {
-                for (v, b) in x.iter_mut().zip(b) {
-                    *v = v.clamp(-b, *b);
-                }
-            }
-            linear::clip(&mut x, &mut y, *feature_norm_bound, *target_bound);
-            for (v, u) in x.iter_mut().zip(&units.features) {
-                *v /= u;
-            }
-            y /= units.target;
-            // No-op in exact arithmetic; guarantees the planned bounds under rounding.
-            linear::clip(&mut x, &mut y, units.x_bound, units.y_bound);
+            units.normalise(&mut x, &mut y);
             linear::accumulate(layout, &x, y, c.grid_exp, slot);
         }
     }
@@ -909,6 +895,22 @@ fn render_linear(
     }
     scales.extend(units.features.iter().copied());
     scales.push(uy);
+    let mut centres: Vec<f64> = Vec::new();
+    if s.intercept {
+        centres.push(0.0);
+    }
+    centres.extend(units.feature_centres.iter().copied());
+    centres.push(units.target_centre);
+    // The fit runs in normalised units, where the centres are c/u (exact: u is a power of two).
+    let shift = units.is_centred().then(|| linear::Shift {
+        features: units
+            .feature_centres
+            .iter()
+            .zip(&units.features)
+            .map(|(c, u)| c / u)
+            .collect(),
+        target: units.target_centre / uy,
+    });
     let q = c.quantum();
     let method = s.fit.unwrap_or(linear::FitMethod::Ridge { lambda: 0.0 });
     let mut names: Vec<String> = Vec::new();
@@ -928,6 +930,7 @@ fn render_linear(
         values: est[0].0.iter().map(|v| v.to_f64() * q).collect(),
         std_error: est[0].1.sqrt() * q,
         scales,
+        centres,
     });
     // The bootstrap of the l1 fit is post-processing; its randomness is derived from the
     // key under an identity no noise node uses (level 255), so it is reproducible.
@@ -954,7 +957,15 @@ fn render_linear(
                 .collect(),
         )
     };
-    match linear::fit(layout, &est[0].0, est[0].1, c.grid_exp, &method, &mut rng) {
+    match linear::fit_shifted(
+        layout,
+        &est[0].0,
+        est[0].1,
+        c.grid_exp,
+        &method,
+        shift.as_ref(),
+        &mut rng,
+    ) {
         Ok(f) => {
             rec.value = obj(&back(&f.coefficients));
             rec.std_error = obj(&back(&f.std_errors));
@@ -987,9 +998,17 @@ fn render_linear(
             index: u64::from(leaf),
             coord: 0,
         });
-        rec.truth = linear::fit(layout, &t[0], 0.0, c.grid_exp, &method, &mut trng)
-            .ok()
-            .map(|f| obj(&back(&f.coefficients)));
+        rec.truth = linear::fit_shifted(
+            layout,
+            &t[0],
+            0.0,
+            c.grid_exp,
+            &method,
+            shift.as_ref(),
+            &mut trng,
+        )
+        .ok()
+        .map(|f| obj(&back(&f.coefficients)));
     }
 }
 
@@ -1041,6 +1060,32 @@ kind = "linear"
 target = "y"
 features = ["v", "w"]
 feature_norm_bound = 10.0
+target_bound = 30.0
+[[stats]]
+name = "lb"
+kind = "linear"
+target = "y"
+features = ["v", "w"]
+feature_norm_bound = 10.0
+feature_bounds = [5.0, 8.0]
+target_bound = 30.0
+[[stats]]
+name = "lr"
+kind = "linear"
+target = "y"
+features = ["v", "w"]
+feature_norm_bound = 20.0
+feature_ranges = [[-2.0, 12.0], [1.0, 9.0]]
+target_bound = 50.0
+target_range = [0.0, 40.0]
+[[stats]]
+name = "ln"
+kind = "linear"
+target = "y"
+features = ["v", "w"]
+intercept = false
+feature_norm_bound = 20.0
+feature_ranges = [[2.0, 12.0], [1.0, 9.0]]
 target_bound = 30.0
 "#
         ))

@@ -52,6 +52,26 @@
 //!   x⁴ ≈ 1e26 and y ≈ 0.1 at once, so y's grid rounding limits the small intercept. Choosing
 //!   feature units that keep the clip bounds near the data is the remedy.
 //!
+//! # Centred statistics
+//! When the configuration declares ranges and the model has an intercept, the engine
+//! accumulates z = (1, x − γ, y − γ_y) with γ the ranges' midpoints in normalised units
+//! (`plan::MomentUnits`). [`fit_shifted`] fits those statistics as they are, which is the
+//! same least-squares problem with the intercept moved, and maps the intercept back:
+//! θ_0 + γ_y − Σ θ_j γ_j. Its std_error is that of the linear combination gᵀθ with
+//! g = (1, −γ). Centring changes nothing for exact data, but with noise it matters: the noise
+//! is sized for the largest |z|, the fit feeds on the spread of z, and a range centred on its
+//! midpoint maps the same data to twice the spread per feature.
+//!
+//! # Why the eigenvalue floor, and when it acts
+//! Of the two repairs privacy-math §6 names, the floor (step 2) was kept over AdaSSP-style
+//! ridge (Wang 2018) because it leaves well-determined directions untouched, while a ridge
+//! shrinks every slope. Both bias the directions they repair, and neither bias is in the
+//! delta-method std_error, so the record's `note` says when the floor acted. The threshold is
+//! a 99.9% bound on the noise's spectral norm: below it an eigenvalue cannot be told apart
+//! from 0 in the worst direction. The remedy for a floored model is in the configuration
+//! (ranges, weight), not in a smaller threshold, which would let noise-sized eigenvalues
+//! blow up the coefficients.
+//!
 //! # Noise in the fit
 //! The delta method uses the exact noise covariance of the packed layout
 //! ([`normal_equation_noise_cov`]). The ℓ1 fit (Frank–Wolfe) gets a parametric bootstrap
@@ -865,11 +885,15 @@ fn solve_full(red: &Reduced, factor: &Factor, r: &[f64]) -> Vec<f64> {
 /// [`normal_equation_noise_cov`] times σ_v² (value units). The derivation: from
 /// (M + E_A)(θ + dθ) = b + e_b, to first order dθ = M⁻¹(e_b − E_A θ). Only the diagonal is
 /// needed: Var θ_k = g_kᵀ Cov(w) g_k, with g_k = M⁻¹ e_k.
+///
+/// With a [`Shift`], the reported intercept is the linear combination gᵀθ with
+/// g = (1, −γ_1, …, −γ_d), and its variance is (M⁻¹g)ᵀ Cov(w) (M⁻¹g) by the same argument.
 fn delta_method_std_errors(
     red: &Reduced,
     factor: &Factor,
     theta: &[f64],
     sigma_v: f64,
+    shift: Option<&Shift>,
 ) -> Vec<f64> {
     let p = theta.len();
     let w = normal_equation_noise_cov(theta) * (sigma_v * sigma_v);
@@ -877,6 +901,11 @@ fn delta_method_std_errors(
         .map(|k| {
             let mut unit = vec![0.0; p];
             unit[k] = 1.0;
+            if let (0, Some(sh), true) = (k, shift, red.count.is_some()) {
+                for (u, g) in unit[1..].iter_mut().zip(&sh.features) {
+                    *u = -g;
+                }
+            }
             let g = DVector::from_vec(solve_full(red, factor, &unit));
             let var = (g.transpose() * &w * &g)[(0, 0)];
             var.max(0.0).sqrt()
@@ -1153,6 +1182,7 @@ fn bootstrap_std_errors<R: Rng + ?Sized>(
     noise_var: f64,
     grid_exp: i32,
     method: &FitMethod,
+    shift: Option<&Shift>,
     rng: &mut R,
 ) -> Result<Vec<f64>, FitError> {
     let sigma = noise_var.sqrt();
@@ -1171,7 +1201,8 @@ fn bootstrap_std_errors<R: Rng + ?Sized>(
         }
         if let Ok(est) = estimate(layout, &perturbed, noise_var, grid_exp, method) {
             ok += 1;
-            for (k, c) in est.coefficients.iter().enumerate() {
+            let coefficients = unshift(layout, est.coefficients, shift);
+            for (k, c) in coefficients.iter().enumerate() {
                 let delta = c - mean[k];
                 mean[k] += delta / ok as f64;
                 m2[k] += delta * (c - mean[k]);
@@ -1208,6 +1239,68 @@ pub fn fit<R: Rng + ?Sized>(
     method: &FitMethod,
     rng: &mut R,
 ) -> Result<LinearFit, FitError> {
+    fit_shifted(layout, values, noise_var, grid_exp, method, None, rng)
+}
+
+/// The centres of statistics accumulated from z = (1, x − γ, y − γ_y) (value units; see
+/// `plan::MomentUnits`). Only meaningful with an intercept.
+#[derive(Clone, Debug, PartialEq)]
+pub struct Shift {
+    /// γ_j per feature.
+    pub features: Vec<f64>,
+    /// γ_y.
+    pub target: f64,
+}
+
+/// Maps coefficients fitted on centred data back to the uncentred model. From
+/// y − γ_y = θ_0 + Σ θ_j (x_j − γ_j): the slopes are unchanged and the intercept is
+/// θ_0 + γ_y − Σ θ_j γ_j. Without an intercept (or shift) the coefficients are returned as is.
+fn unshift(layout: &Layout, mut coefficients: Vec<f64>, shift: Option<&Shift>) -> Vec<f64> {
+    if let (Some(sh), true) = (shift, layout.intercept()) {
+        let moved: f64 = coefficients[1..]
+            .iter()
+            .zip(&sh.features)
+            .map(|(t, g)| t * g)
+            .sum();
+        coefficients[0] += sh.target - moved;
+    }
+    coefficients
+}
+
+/// [`fit`] of statistics accumulated on centred data (`shift`), with coefficients and
+/// standard errors reported for the uncentred model ([`unshift`]). `shift` is ignored without
+/// an intercept. The numerics are those of [`fit`]; the centring happens before the release,
+/// so it is post-processing-free and costs nothing.
+pub fn fit_shifted<R: Rng + ?Sized>(
+    layout: &Layout,
+    values: &[Dd],
+    noise_var: f64,
+    grid_exp: i32,
+    method: &FitMethod,
+    shift: Option<&Shift>,
+    rng: &mut R,
+) -> Result<LinearFit, FitError> {
+    let shift = shift.filter(|_| layout.intercept());
+    if let Some(sh) = shift {
+        if sh.features.len() != layout.n_features() {
+            return Err(FitError::WrongLength {
+                expected: layout.n_features(),
+                found: sh.features.len(),
+            });
+        }
+        if let Some(bad) = sh
+            .features
+            .iter()
+            .chain([&sh.target])
+            .find(|v| !v.is_finite())
+        {
+            return Err(FitError::InvalidParameter {
+                name: "shift",
+                value: *bad,
+                expected: "finite centres",
+            });
+        }
+    }
     validate(layout, values, noise_var, grid_exp, method)?;
     let est = estimate(layout, values, noise_var, grid_exp, method)?;
     let p = est.coefficients.len();
@@ -1217,13 +1310,15 @@ pub fn fit<R: Rng + ?Sized>(
         match (&est.system, method) {
             (Some((red, factor)), _) => {
                 let sigma_v = noise_var.sqrt() * pow2(grid_exp);
-                delta_method_std_errors(red, factor, &est.coefficients, sigma_v)
+                delta_method_std_errors(red, factor, &est.coefficients, sigma_v, shift)
             }
-            (None, _) => bootstrap_std_errors(layout, values, noise_var, grid_exp, method, rng)?,
+            (None, _) => {
+                bootstrap_std_errors(layout, values, noise_var, grid_exp, method, shift, rng)?
+            }
         }
     };
     Ok(LinearFit {
-        coefficients: est.coefficients,
+        coefficients: unshift(layout, est.coefficients, shift),
         std_errors,
         n_hat: est.n_hat,
         condition_number: est.condition_number,
@@ -1505,6 +1600,126 @@ mod tests {
         let values = exact_values(layout, rows, e);
         let mut rng = ChaCha20Rng::seed_from_u64(1);
         fit(layout, &values, 0.0, e, &OLS, &mut rng).unwrap()
+    }
+
+    // --- Centred statistics (fit_shifted) ----------------------------------------------
+
+    /// `rows` moved by −γ (features) and −γ_y (target).
+    fn shifted(rows: &[Row], gamma: &[f64], gamma_y: f64) -> Vec<Row> {
+        rows.iter()
+            .map(|(x, y)| {
+                (
+                    x.iter().zip(gamma).map(|(a, g)| a - g).collect(),
+                    y - gamma_y,
+                )
+            })
+            .collect()
+    }
+
+    #[test]
+    fn fit_shifted_maps_centred_statistics_back_to_the_raw_model() {
+        // With an intercept, least squares is equivariant under x → x − γ, y → y − γ_y: the
+        // slopes are unchanged and the intercept moves by γ_y − Σ θ_j γ_j (algebra of the
+        // normal equations; any regression text). Reference: the raw fit of the same rows.
+        let layout = Layout::new(2, true);
+        let raw: Vec<Row> = simulated_rows(11, 400, 2)
+            .into_iter()
+            .map(|(x, y)| (vec![x[0] + 7.0, x[1] - 3.0], y + 20.0))
+            .collect();
+        let reference = fit_exact(&layout, &raw);
+        let (gamma, gamma_y) = (vec![7.5, -2.0], 21.0);
+        let centred = shifted(&raw, &gamma, gamma_y);
+        let e = finest_grid(&layout, &centred);
+        let values = exact_values(&layout, &centred, e);
+        let shift = Shift {
+            features: gamma.clone(),
+            target: gamma_y,
+        };
+        let mut rng = ChaCha20Rng::seed_from_u64(1);
+        let got = fit_shifted(&layout, &values, 0.0, e, &OLS, Some(&shift), &mut rng).unwrap();
+        for (g, r) in got.coefficients.iter().zip(&reference.coefficients) {
+            assert!((g - r).abs() <= 1e-12 * r.abs().max(1.0), "{g} vs {r}");
+        }
+        // The ℓ1 path maps back the same way. After the intercept is eliminated, Frank–Wolfe
+        // sees the same centred quadratic either way, so the raw ℓ1 fit is the reference.
+        let l1 = FitMethod::L1 { radius: 1.0 };
+        let e_raw = finest_grid(&layout, &raw);
+        let raw_l1 = fit(
+            &layout,
+            &exact_values(&layout, &raw, e_raw),
+            0.0,
+            e_raw,
+            &l1,
+            &mut rng,
+        )
+        .unwrap();
+        let got = fit_shifted(&layout, &values, 0.0, e, &l1, Some(&shift), &mut rng).unwrap();
+        for (g, r) in got.coefficients.iter().zip(&raw_l1.coefficients) {
+            assert!((g - r).abs() <= 1e-9 * r.abs().max(1.0), "{g} vs {r}");
+        }
+        // Without an intercept the shift is ignored (there is no constant to absorb it).
+        let no_int = Layout::new(2, false);
+        let e = finest_grid(&no_int, &raw);
+        let values = exact_values(&no_int, &raw, e);
+        let a = fit(&no_int, &values, 0.0, e, &OLS, &mut rng).unwrap();
+        let b = fit_shifted(&no_int, &values, 0.0, e, &OLS, Some(&shift), &mut rng).unwrap();
+        assert_eq!(a.coefficients, b.coefficients);
+    }
+
+    #[test]
+    fn shifted_intercept_std_error_matches_simulation() {
+        // The delta-method SE of the mapped-back intercept gᵀθ, g = (1, −γ), against the
+        // spread of the same estimate over repeated noise draws. At this noise level the
+        // first-order approximation is accurate; the sample SD of R = 4000 draws has relative
+        // standard error 1/√(2R) ≈ 1.1% (common practice), so 6% is over 5 of those.
+        let layout = Layout::new(2, true);
+        let centred = shifted(&simulated_rows(12, 2000, 2), &[-4.0, 1.0], -10.0);
+        let e = -20;
+        let exact = exact_values(&layout, &centred, e);
+        let shift = Shift {
+            features: vec![-4.0, 1.0],
+            target: -10.0,
+        };
+        let sigma = 2f64.powi(20) * 2.0; // grid units: 2 in value units
+        let mut rng = ChaCha20Rng::seed_from_u64(5);
+        let reported = fit_shifted(
+            &layout,
+            &add_noise(&exact, sigma, &mut rng),
+            sigma * sigma,
+            e,
+            &OLS,
+            Some(&shift),
+            &mut rng,
+        )
+        .unwrap()
+        .std_errors;
+        let draws: Vec<Vec<f64>> = (0..4000)
+            .map(|_| {
+                let noisy = add_noise(&exact, sigma, &mut rng);
+                fit_shifted(
+                    &layout,
+                    &noisy,
+                    sigma * sigma,
+                    e,
+                    &OLS,
+                    Some(&shift),
+                    &mut rng,
+                )
+                .unwrap()
+                .coefficients
+            })
+            .collect();
+        for k in 0..3 {
+            let mean = draws.iter().map(|d| d[k]).sum::<f64>() / draws.len() as f64;
+            let sd = (draws.iter().map(|d| (d[k] - mean).powi(2)).sum::<f64>()
+                / (draws.len() - 1) as f64)
+                .sqrt();
+            assert!(
+                (reported[k] / sd - 1.0).abs() < 0.06,
+                "coefficient {k}: delta method {} vs simulated {sd}",
+                reported[k]
+            );
+        }
     }
 
     // --- Layout, clip, accumulate, sensitivity ------------------------------------------

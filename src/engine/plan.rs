@@ -146,14 +146,8 @@ pub enum ComponentRole {
         layout: linear::Layout,
         /// Whether `z` starts with the constant 1.
         intercept: bool,
-        /// L2 clip of the feature vector.
-        feature_norm_bound: f64,
-        /// Normalisation units (see [`MomentUnits`]).
+        /// Clipping, centring and normalisation (see [`MomentUnits`]).
         units: MomentUnits,
-        /// Per-feature clamps, if configured.
-        feature_bounds: Option<Vec<f64>>,
-        /// Clamp of |y|.
-        target_bound: f64,
     },
 }
 
@@ -356,9 +350,9 @@ impl Plan {
                 // Split the statistic's share evenly over its components (mean: ρ/2 each):
                 // zCDP composes additively (Bun & Steinke 2016), so the sum is the share.
                 let comp = plan_component(role, rho_share / n_roles, &level, mech, horizon)
-                    .ok_or_else(|| PlanError::GridOverflow {
+                    .map_err(|sigma| PlanError::GridOverflow {
                         stat: s.name.clone(),
-                        sigma: 0.0,
+                        sigma,
                     })?;
                 components.push(comp);
             }
@@ -461,15 +455,7 @@ fn roles_of(s: &StatConfig, number_index: &mut impl FnMut(&str) -> usize) -> Vec
                 target,
                 layout: linear::Layout::new(l.features.len(), l.intercept),
                 intercept: l.intercept,
-                feature_bounds: l.feature_bounds.clone(),
-                units: MomentUnits::new(
-                    l.features.len(),
-                    l.feature_norm_bound,
-                    l.feature_bounds.as_deref(),
-                    l.target_bound,
-                ),
-                feature_norm_bound: l.feature_norm_bound,
-                target_bound: l.target_bound,
+                units: MomentUnits::new(l),
             }]
         }
     }
@@ -489,52 +475,164 @@ pub fn moment_unit(b: f64) -> f64 {
     }
 }
 
-/// Units in which the linear kind accumulates its moments: x'_j = x_j / features[j] and
-/// y' = y / target, all powers of two (exact division).
+/// How the linear kind turns a raw event (x, y) into the normalised, clipped vector it
+/// accumulates: x'_j = (x_j − c_j)/u_j and y' = (y − c_y)/u_y, with units u that are powers
+/// of two (exact division) and centres c.
+///
+/// Two configurations:
+/// - *Symmetric* (no `feature_ranges`): each feature is clamped to |x_j| ≤ min(b_j, B_x)
+///   (`feature_bounds`, else B_x = `feature_norm_bound`), then the vector is L2-clipped to B_x
+///   (which only shrinks coordinates, so the clamps still hold). Centres are 0.
+/// - *Ranges* (`feature_ranges`): x is L2-clipped to B_x first, then each feature is clamped
+///   into [lo_j, hi_j]. With an intercept, the centre is the midpoint c_j = (lo_j + hi_j)/2.
+///   Without one it is 0, because without the constant column the centred moments could not
+///   be mapped back to Σxxᵀ.
+///
+/// The target is clamped to |y| ≤ B_y, then into `target_range` when given, and centred on
+/// its midpoint under the same rule.
+///
+/// Why centre. The noise is sized for the largest possible |x'_j| ≤ 1, but the fit depends
+/// on the spread of x'. A feature whose values lie in [0, 30] and that is bounded
+/// symmetrically by 30 uses half of the normalised range at most; centred on 15 with unit 16
+/// instead of 32, the same data have four times the second moments against the same noise.
+/// The centres come from the configuration, never from the data, so they cost no budget, and
+/// with an intercept the fit is equivariant under the shift: slopes are unchanged and the
+/// intercept is mapped back exactly ([`linear::fit`] with [`linear::Centring`]).
 #[derive(Clone, Debug, PartialEq)]
 pub struct MomentUnits {
-    /// Unit of each feature.
+    /// Unit u_j of each feature.
     pub features: Vec<f64>,
-    /// Unit of the target.
+    /// Unit u_y of the target.
     pub target: f64,
-    /// Bound on ‖x'‖₂ after clipping.
+    /// Centre c_j of each feature (0 unless ranges and an intercept).
+    pub feature_centres: Vec<f64>,
+    /// Centre c_y of the target.
+    pub target_centre: f64,
+    /// Per-feature clamp interval [lo_j, hi_j] in value units.
+    pub feature_clamps: Vec<(f64, f64)>,
+    /// The order of the clip steps.
+    pub order: ClipOrder,
+    /// The L2 clip B_x of the raw feature vector.
+    pub feature_norm_bound: f64,
+    /// Clamp interval of the target in value units.
+    pub target_clamp: (f64, f64),
+    /// Bound on ‖x'‖₂ after normalisation.
     pub x_bound: f64,
-    /// Bound on |y'| after clipping.
+    /// Bound on |y'| after normalisation.
     pub y_bound: f64,
 }
 
+/// The order of the clip steps of [`MomentUnits::normalise`] (see [`MomentUnits`]).
+#[derive(Clone, Copy, Debug, PartialEq, Eq)]
+pub enum ClipOrder {
+    /// Only the L2 clip of x (no per-feature clamps configured).
+    NormOnly,
+    /// Symmetric `feature_bounds`: clamp each feature, then the L2 clip.
+    ClampThenNorm,
+    /// `feature_ranges`: the L2 clip, then clamp each feature into its range.
+    NormThenClamp,
+}
+
 impl MomentUnits {
-    /// Units for `n` features with L2 clip `b_x`, optional per-feature clamps, target clip `b_y`.
+    /// The units, centres and bounds of a linear model's configuration.
     ///
-    /// Derivation of the normalised bounds: after clamping |x_j| ≤ c_j = min(b_j, b_x) and the
-    /// L2 clip ‖x‖ ≤ b_x (which only shrinks coordinates), ‖x'‖² = Σ (x_j/u_j)² is at most
-    /// Σ (c_j/u_j)², and also at most ‖x‖²/min_j u_j² ≤ (b_x / min u)²; we take the smaller.
-    /// |y'| ≤ b_y / u_y.
-    pub fn new(n: usize, b_x: f64, per_feature: Option<&[f64]>, b_y: f64) -> MomentUnits {
-        let clamps: Vec<f64> = match per_feature {
-            Some(b) => b.iter().map(|v| v.min(b_x)).collect(),
-            None => vec![b_x; n],
-        };
-        let features: Vec<f64> = clamps.iter().map(|c| moment_unit(*c)).collect();
-        let by_coord = clamps
+    /// Derivation of the normalised bounds. After clamping, |x_j − c_j| ≤ h_j with
+    /// h_j = max(|lo_j − c_j|, |hi_j − c_j|), so ‖x'‖² ≤ Σ (h_j/u_j)². In the symmetric
+    /// configuration the L2 clip also gives ‖x'‖ ≤ ‖x‖/min_j u_j ≤ B_x / min u, and we take the
+    /// smaller. With ranges the clamp comes last and may move x away from 0, so only the
+    /// per-coordinate bound is used. |y'| ≤ h_y / u_y likewise. Rounding in the subtraction
+    /// and division is covered by the final re-clip in [`MomentUnits::normalise`].
+    pub fn new(l: &crate::config::LinearConfig) -> MomentUnits {
+        let b_x = l.feature_norm_bound;
+        let n = l.features.len();
+        let (feature_clamps, order): (Vec<(f64, f64)>, ClipOrder) =
+            match (&l.feature_ranges, &l.feature_bounds) {
+                (Some(r), _) => (r.clone(), ClipOrder::NormThenClamp),
+                (None, Some(b)) => (
+                    b.iter().map(|v| (-v.min(b_x), v.min(b_x))).collect(),
+                    ClipOrder::ClampThenNorm,
+                ),
+                (None, None) => (vec![(-b_x, b_x); n], ClipOrder::NormOnly),
+            };
+        let ranges = order == ClipOrder::NormThenClamp;
+        let centre =
+            |(lo, hi): (f64, f64), use_mid: bool| if use_mid { lo / 2.0 + hi / 2.0 } else { 0.0 };
+        let feature_centres: Vec<f64> = feature_clamps
+            .iter()
+            .map(|&c| centre(c, ranges && l.intercept))
+            .collect();
+        let half_width = |(lo, hi): (f64, f64), c: f64| (lo - c).abs().max((hi - c).abs());
+        let half_widths: Vec<f64> = feature_clamps
+            .iter()
+            .zip(&feature_centres)
+            .map(|(&r, &c)| half_width(r, c))
+            .collect();
+        let features: Vec<f64> = half_widths.iter().map(|h| moment_unit(*h)).collect();
+        let by_coord = half_widths
             .iter()
             .zip(&features)
-            .map(|(c, u)| (c / u).powi(2))
+            .map(|(h, u)| (h / u).powi(2))
             .sum::<f64>()
             .sqrt();
         let min_unit = features.iter().copied().fold(f64::INFINITY, f64::min);
-        let x_bound = by_coord.min(if min_unit.is_finite() {
-            b_x / min_unit
+        let x_bound = if ranges || !min_unit.is_finite() {
+            by_coord
         } else {
-            0.0
-        });
-        let target = moment_unit(b_y);
+            by_coord.min(b_x / min_unit)
+        };
+        let b_y = l.target_bound;
+        let target_clamp = l.target_range.unwrap_or((-b_y, b_y));
+        let target_centre = centre(target_clamp, l.target_range.is_some() && l.intercept);
+        let h_y = half_width(target_clamp, target_centre);
+        let target = moment_unit(h_y);
         MomentUnits {
             features,
             target,
+            feature_centres,
+            target_centre,
+            feature_clamps,
+            order,
+            feature_norm_bound: b_x,
+            target_clamp,
             x_bound,
-            y_bound: b_y / target,
+            y_bound: h_y / target,
         }
+    }
+
+    /// Whether any centre is non-zero (the fit must then map the intercept back).
+    pub fn is_centred(&self) -> bool {
+        self.target_centre != 0.0 || self.feature_centres.iter().any(|c| *c != 0.0)
+    }
+
+    /// Clips, centres and normalises one event's raw (x, y) in place, as described on
+    /// [`MomentUnits`]. Non-finite inputs become harmless first ([`linear::clip`]). The final
+    /// re-clip to (`x_bound`, `y_bound`) is a no-op in exact arithmetic; it guarantees the
+    /// planned bounds under rounding, so the sensitivity holds for every output.
+    pub fn normalise(&self, x: &mut [f64], y: &mut f64) {
+        let clamp_all = |x: &mut [f64]| {
+            for (v, &(lo, hi)) in x.iter_mut().zip(&self.feature_clamps) {
+                *v = v.clamp(lo, hi);
+            }
+        };
+        let b_y = self.target_clamp.0.abs().max(self.target_clamp.1.abs());
+        match self.order {
+            ClipOrder::NormOnly => linear::clip(x, y, self.feature_norm_bound, b_y),
+            // A NaN survives `clamp` and is zeroed by `clip`; ±∞ is clamped to the bound.
+            ClipOrder::ClampThenNorm => {
+                clamp_all(x);
+                linear::clip(x, y, self.feature_norm_bound, b_y);
+            }
+            ClipOrder::NormThenClamp => {
+                linear::clip(x, y, self.feature_norm_bound, b_y);
+                clamp_all(x);
+            }
+        }
+        *y = y.clamp(self.target_clamp.0, self.target_clamp.1);
+        for ((v, u), c) in x.iter_mut().zip(&self.features).zip(&self.feature_centres) {
+            *v = (*v - c) / u;
+        }
+        *y = (*y - self.target_centre) / self.target;
+        linear::clip(x, y, self.x_bound, self.y_bound);
     }
 }
 
@@ -605,13 +703,15 @@ fn event_sens_sq(role: &ComponentRole, e: i32) -> f64 {
 /// for the discrete Gaussian the same ρ holds: Canonne, Kamath & Steinke 2020, Thm 4).
 /// σ² is rounded *up* to an integer for the exact sampler, so the ρ actually spent is at
 /// most the share.
+/// Err carries σ in value units when the grid needed for it would overflow the accumulators
+/// (the noise is too small for the data's range).
 fn plan_component(
     role: ComponentRole,
     rho: f64,
     level: &PrivacyLevel,
     mech: MechanismKind,
     horizon: u32,
-) -> Option<ComponentPlan> {
+) -> Result<ComponentPlan, f64> {
     let k = f64::from(level.events_per_window());
     let m = level.windows_per_epoch();
     let (scale, dim) = value_scale(&role);
@@ -628,7 +728,11 @@ fn plan_component(
             e_value.max(e_hi).min(e_lo)
         }
         ComponentRole::Moments { .. } => {
-            let e_value = scale.log2().floor() as i32 - 80;
+            // The finest grid the accumulators allow (the guard below): one leaf of k events
+            // must stay below 2^(80 − log2 T) grid units, with one bit for the rounding
+            // margin of `event_sens_sq`. Only binding when σ is tiny (e_hi below it).
+            let e_value =
+                (k * scale).log2().ceil() as i32 + f64::from(horizon).log2().ceil() as i32 + 1 - 80;
             e_value.max(e_hi).min(e_lo)
         }
     };
@@ -637,17 +741,17 @@ fn plan_component(
     let sensitivity_sq = mechanism::sensitivity_sq(mech, horizon, dim, leaf_bound, m);
     let sigma2_real = accounting::gaussian_sigma2(sensitivity_sq, rho);
     if !sigma2_real.is_finite() || sigma2_real >= 2f64.powi(120) {
-        return None;
+        return Err(sigma_value);
     }
     // Guard the i128 accumulators: a node sums at most T leaves of at most
     // `max_events_per_window × units` events; we require head-room for 2^40 events per node.
     if leaf_bound.log2() + 40.0 + f64::from(horizon).log2() > 120.0 {
-        return None;
+        return Err(sigma_value);
     }
     let sigma2 = sigma2_real.ceil().max(1.0) as u128;
     let node_var = noise::discrete_gaussian_variance(sigma2 as f64);
     let rho_real = accounting::gaussian_rho(sensitivity_sq, sigma2 as f64);
-    Some(ComponentPlan {
+    Ok(ComponentPlan {
         role,
         dim,
         grid_exp: e,
@@ -663,5 +767,162 @@ fn plan_component(
 impl fmt::Display for Scope {
     fn fmt(&self, f: &mut fmt::Formatter<'_>) -> fmt::Result {
         f.write_str(&self.label())
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use crate::config::{Config, StatKind};
+    use proptest::prelude::*;
+
+    /// The linear configurations of the three clip orders (and a range without 0, without
+    /// an intercept).
+    fn linear_units() -> Vec<MomentUnits> {
+        let toml = r#"
+[input]
+time_field = "ts"
+[window]
+length = "1h"
+[privacy]
+rho_per_epoch = 1.0
+delta = 1e-9
+epoch_windows = 4
+[[stats]]
+name = "plain"
+kind = "linear"
+target = "y"
+features = ["a", "b"]
+feature_norm_bound = 10.0
+target_bound = 30.0
+[[stats]]
+name = "bounds"
+kind = "linear"
+target = "y"
+features = ["a", "b"]
+feature_norm_bound = 10.0
+feature_bounds = [3.0, 50.0]
+target_bound = 30.0
+[[stats]]
+name = "ranges"
+kind = "linear"
+target = "y"
+features = ["a", "b"]
+feature_norm_bound = 40.0
+feature_ranges = [[0.0, 30.0], [-1.5, 4.0]]
+target_bound = 120.0
+target_range = [10.0, 120.0]
+[[stats]]
+name = "ranges_no_intercept"
+kind = "linear"
+target = "y"
+features = ["a", "b"]
+intercept = false
+feature_norm_bound = 40.0
+feature_ranges = [[5.0, 30.0], [1.0, 4.0]]
+target_bound = 120.0
+"#;
+        let cfg = Config::from_toml_str(toml).expect("valid config");
+        cfg.stats
+            .iter()
+            .map(|s| match &s.kind {
+                StatKind::Linear(l) => MomentUnits::new(l),
+                _ => unreachable!("only linear stats"),
+            })
+            .collect()
+    }
+
+    #[test]
+    fn units_centres_and_bounds_follow_the_derivation() {
+        let u = linear_units();
+        // Symmetric: unit 16 ≥ 10 for both; ‖x'‖ ≤ min(√2·10/16, 10/16) = 0.625; y: 30/32.
+        assert_eq!(u[0].features, vec![16.0, 16.0]);
+        assert_eq!(u[0].order, ClipOrder::NormOnly);
+        assert!((u[0].x_bound - 0.625).abs() < 1e-15);
+        assert!((u[0].y_bound - 30.0 / 32.0).abs() < 1e-15);
+        // Per-feature bounds: clamps 3 and min(50, 10) = 10, units 4 and 16;
+        // ‖x'‖ ≤ min(√((3/4)² + (10/16)²), 10/4) = √(0.5625 + 0.390625).
+        assert_eq!(u[1].features, vec![4.0, 16.0]);
+        assert!((u[1].x_bound - (0.5625f64 + 0.390625).sqrt()).abs() < 1e-15);
+        // Ranges with an intercept: centres 15 and 1.25, half-widths 15 and 2.75, units 16
+        // and 4; target centre 65, half-width 55, unit 64.
+        assert_eq!(u[2].order, ClipOrder::NormThenClamp);
+        assert_eq!(u[2].feature_centres, vec![15.0, 1.25]);
+        assert_eq!(u[2].features, vec![16.0, 4.0]);
+        assert!(
+            (u[2].x_bound - ((15.0f64 / 16.0).powi(2) + (2.75f64 / 4.0).powi(2)).sqrt()).abs()
+                < 1e-15
+        );
+        assert_eq!((u[2].target_centre, u[2].target), (65.0, 64.0));
+        assert!((u[2].y_bound - 55.0 / 64.0).abs() < 1e-15);
+        assert!(u[2].is_centred());
+        // Without an intercept nothing is centred; the half-width is the largest |end|.
+        assert_eq!(u[3].feature_centres, vec![0.0, 0.0]);
+        assert_eq!(u[3].features, vec![32.0, 4.0]);
+        assert!(!u[3].is_centred());
+    }
+
+    #[test]
+    fn centring_quadruples_the_spread_of_data_in_the_lower_half() {
+        // The demo's case: km in [0, 30], symmetric bound 30 (unit 32) against the range
+        // [0, 30] centred on 15 (unit 16): the normalised spread of the same data is
+        // (32/16)² = 4 times larger, against noise of the same order.
+        let u = linear_units();
+        let spread = |mu: &MomentUnits, xs: &[f64]| {
+            let vals: Vec<f64> = xs
+                .iter()
+                .map(|&a| {
+                    let (mut x, mut y) = (vec![a, 0.0], 20.0);
+                    mu.normalise(&mut x, &mut y);
+                    x[0]
+                })
+                .collect();
+            let mean = vals.iter().sum::<f64>() / vals.len() as f64;
+            vals.iter().map(|v| (v - mean).powi(2)).sum::<f64>()
+        };
+        let data = [2.0, 3.5, 5.0, 8.0];
+        let sym = MomentUnits {
+            features: vec![32.0, 4.0],
+            feature_centres: vec![0.0, 0.0],
+            feature_clamps: vec![(-30.0, 30.0), (-4.0, 4.0)],
+            order: ClipOrder::ClampThenNorm,
+            ..u[2].clone()
+        };
+        let r = spread(&u[2], &data) / spread(&sym, &data);
+        assert!((r - 4.0).abs() < 1e-12, "ratio {r}");
+    }
+
+    proptest! {
+        /// Whatever comes in (huge, tiny, infinite, NaN), the normalised vector respects the
+        /// bounds the sensitivity is computed from.
+        #[test]
+        fn normalised_vectors_respect_the_planned_bounds(
+            a in prop_oneof![any::<f64>(), -100.0..100.0f64],
+            b in prop_oneof![any::<f64>(), -100.0..100.0f64],
+            y in prop_oneof![any::<f64>(), -300.0..300.0f64],
+        ) {
+            for mu in linear_units() {
+                let (mut x, mut yy) = (vec![a, b], y);
+                mu.normalise(&mut x, &mut yy);
+                let norm = (x[0] * x[0] + x[1] * x[1]).sqrt();
+                prop_assert!(x.iter().all(|v| v.is_finite()) && yy.is_finite());
+                // `linear::clip` computes the norm in floating point; the sensitivity allows
+                // for that (`linear::event_sensitivity_sq`: ‖x‖² ≤ B²(1 + 2^-41)).
+                prop_assert!(
+                    norm <= mu.x_bound * (1.0 + 2f64.powi(-42)),
+                    "‖x'‖ = {} > {}",
+                    norm,
+                    mu.x_bound
+                );
+                prop_assert!(yy.abs() <= mu.y_bound, "|y'| = {} > {}", yy.abs(), mu.y_bound);
+                if mu.order == ClipOrder::NormThenClamp {
+                    // Ranges hold per coordinate too.
+                    for ((v, u), ((lo, hi), c)) in x.iter().zip(&mu.features).zip(mu.feature_clamps.iter().zip(&mu.feature_centres)) {
+                        let raw = v * u + c;
+                        prop_assert!(raw >= lo - 1e-9 && raw <= hi + 1e-9, "{} outside [{}, {}]", raw, lo, hi);
+                    }
+                }
+            }
+        }
     }
 }

@@ -173,6 +173,34 @@ fn budget_view(engine: &Engine) -> BudgetView {
     }
 }
 
+/// Seconds until the lifetime budget runs out at one window of event time per window length.
+///
+/// `charged` epochs are paid for (the current one is charged when its first window closes).
+/// With `closed` > 0 windows of the current epoch closed, the current epoch is charged and
+/// has T − closed windows left, and `allowed − charged` whole epochs follow. With
+/// `closed` = 0 the next epoch is not charged yet, so `allowed − charged` whole epochs remain
+/// and nothing of a current one. `None` allowed (event level) never runs out.
+fn exhaustion_eta_seconds(
+    allowed: Option<u64>,
+    charged: u64,
+    epoch_windows: u32,
+    closed: u32,
+    window_ms: i64,
+) -> f64 {
+    match allowed {
+        Some(n) => {
+            let whole = n.saturating_sub(charged) as f64 * f64::from(epoch_windows);
+            let current = if closed > 0 {
+                f64::from(epoch_windows - closed)
+            } else {
+                0.0
+            };
+            (whole + current) * window_ms as f64 / 1000.0
+        }
+        None => f64::INFINITY,
+    }
+}
+
 fn update_gauges(m: &mut Metrics, engine: &Engine, window_ms: i64) {
     m.observe(engine.counters());
     let l = engine.ledger();
@@ -181,21 +209,17 @@ fn update_gauges(m: &mut Metrics, engine: &Engine, window_ms: i64) {
         .set(l.remaining().unwrap_or(f64::INFINITY));
     m.budget_exhausted.set(i64::from(engine.halted().is_some()));
     let plan = engine.plan();
-    if let Some((_, closed)) = engine.epoch_position() {
-        m.epoch_windows_remaining
-            .set(i64::from(plan.epoch_windows - closed));
-        // Epochs still affordable after the current one, each of T windows of length L.
-        let eta = match plan.epochs_allowed() {
-            Some(n) => {
-                let left_epochs = n.saturating_sub(l.epochs_charged()) as f64;
-                let left_windows = left_epochs * f64::from(plan.epoch_windows)
-                    + f64::from(plan.epoch_windows - closed);
-                left_windows * window_ms as f64 / 1000.0
-            }
-            None => f64::INFINITY,
-        };
-        m.budget_exhaustion_eta.set(eta);
-    }
+    // Before the first event no epoch has started: a whole epoch lies ahead.
+    let closed = engine.epoch_position().map_or(0, |(_, closed)| closed);
+    m.epoch_windows_remaining
+        .set(i64::from(plan.epoch_windows - closed));
+    m.budget_exhaustion_eta.set(exhaustion_eta_seconds(
+        plan.epochs_allowed(),
+        l.epochs_charged(),
+        plan.epoch_windows,
+        closed,
+        window_ms,
+    ));
     m.windows_open.set(engine.open_windows() as i64);
     if let Some(w) = engine.watermark() {
         m.watermark.set(w.0 as f64 / 1000.0);
@@ -567,4 +591,32 @@ pub async fn serve_snapshot(
         })
         .await
         .map_err(io("serving HTTP".to_string()))
+}
+
+#[cfg(test)]
+mod tests {
+    use super::exhaustion_eta_seconds;
+
+    #[test]
+    fn exhaustion_eta_counts_every_window_the_lifetime_budget_still_pays_for() {
+        // Brute force: a lifetime of n epochs pays for n·T windows; after e whole epochs and
+        // `closed` windows of the next, n·T − (e·T + closed) remain, each one window length.
+        let window_ms = 3_600_000i64;
+        for n in 1..5u64 {
+            for t in 1..6u32 {
+                for e in 0..n {
+                    for closed in 0..t {
+                        let charged = if closed > 0 { e + 1 } else { e };
+                        let left = n * u64::from(t) - (e * u64::from(t) + u64::from(closed));
+                        let want = left as f64 * 3600.0;
+                        let got = exhaustion_eta_seconds(Some(n), charged, t, closed, window_ms);
+                        assert_eq!(got, want, "n={n} T={t} e={e} closed={closed}");
+                    }
+                }
+                // All n epochs spent: nothing left.
+                assert_eq!(exhaustion_eta_seconds(Some(n), n, t, 0, window_ms), 0.0);
+            }
+        }
+        assert!(exhaustion_eta_seconds(None, 3, 24, 5, window_ms).is_infinite());
+    }
 }
