@@ -262,10 +262,14 @@ pub enum SourceConfig {
 }
 
 /// `[http]` (`run` only).
-#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+#[derive(Debug, Clone, PartialEq, Eq)]
 pub struct HttpConfig {
     /// Listening address; default 127.0.0.1:9650 (loopback only).
     pub listen: SocketAddr,
+    /// File holding the bearer token that `/metrics` and `/v1/ingest` (exact operational
+    /// counts, not differentially private) require; `None`: those endpoints are open to
+    /// whoever reaches the listener.
+    pub operator_token_file: Option<PathBuf>,
 }
 
 /// `[output]`.
@@ -601,6 +605,9 @@ pub struct RawHttp {
     /// `listen`.
     #[serde(default, deserialize_with = "strict::text")]
     pub listen: Option<String>,
+    /// `operator_token_file`.
+    #[serde(default, deserialize_with = "strict::text")]
+    pub operator_token_file: Option<String>,
 }
 
 /// `[output]` as written.
@@ -2158,7 +2165,20 @@ fn resolve_http(raw: RawHttp) -> Result<HttpConfig, ConfigError> {
         raw.listen.as_deref().unwrap_or("127.0.0.1:9650"),
         "http.listen",
     )?;
-    Ok(HttpConfig { listen })
+    let operator_token_file = match raw.operator_token_file {
+        None => None,
+        Some(p) if p.trim().is_empty() => {
+            return Err(invalid(
+                "http.operator_token_file",
+                "is empty: give the path of a file holding the operator token, or leave the key out",
+            ));
+        }
+        Some(p) => Some(PathBuf::from(p)),
+    };
+    Ok(HttpConfig {
+        listen,
+        operator_token_file,
+    })
 }
 
 fn resolve_dir(value: Option<String>, key: &str, default: &str) -> Result<PathBuf, ConfigError> {
@@ -2349,7 +2369,10 @@ mod tests {
     #[test]
     fn key_probe_reads_serde_field_names() {
         // The declared keys must be exactly the struct fields, in declaration order.
-        assert_eq!(declared_keys::<RawHttp>(), &["listen"]);
+        assert_eq!(
+            declared_keys::<RawHttp>(),
+            &["listen", "operator_token_file"]
+        );
         assert_eq!(declared_keys::<RawState>(), &["dir", "checkpoint_interval"]);
         assert_eq!(
             declared_keys::<RawConfig>(),

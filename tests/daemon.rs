@@ -558,3 +558,94 @@ fn idle_connections_are_closed_and_the_budget_eta_counts_down() {
     assert_eq!(eta, whole + current, "{m}");
     assert!(eta < 8.0, "the ETA went down: {m}");
 }
+
+/// `get` with an `Authorization: Bearer` header.
+fn get_bearer(addr: &str, path: &str, token: &str) -> (u16, String) {
+    let mut s = TcpStream::connect(addr).expect("connect http");
+    s.set_read_timeout(Some(Duration::from_secs(10))).unwrap();
+    write!(
+        s,
+        "GET {path} HTTP/1.1\r\nHost: {addr}\r\nAuthorization: Bearer {token}\r\nConnection: close\r\n\r\n"
+    )
+    .unwrap();
+    let mut buf = Vec::new();
+    s.read_to_end(&mut buf).unwrap();
+    let text = String::from_utf8_lossy(&buf).into_owned();
+    let status = text
+        .split_whitespace()
+        .nth(1)
+        .and_then(|c| c.parse().ok())
+        .unwrap_or(0);
+    let body = text
+        .split_once("\r\n\r\n")
+        .map(|(_, b)| b.to_string())
+        .unwrap_or_default();
+    (status, body)
+}
+
+#[test]
+fn exact_counts_stay_behind_the_operator_token() {
+    use std::os::unix::fs::PermissionsExt;
+    let dir = tempfile::tempdir().unwrap();
+    let token = "0123456789abcdef0123456789abcdef";
+    let token_path = dir.path().join("operator.token");
+    std::fs::write(&token_path, format!("{token}\n")).unwrap();
+    let cfg = unit_config(dir.path()).replace(
+        "[http]\nlisten = \"127.0.0.1:0\"",
+        &format!(
+            "[http]\nlisten = \"127.0.0.1:0\"\noperator_token_file = \"{}\"",
+            token_path.display()
+        ),
+    );
+    assert!(cfg.contains("operator_token_file"));
+
+    // A token file others can read is refused at start, naming the key and the fix.
+    std::fs::set_permissions(&token_path, std::fs::Permissions::from_mode(0o644)).unwrap();
+    std::fs::write(dir.path().join("scrim.toml"), &cfg).unwrap();
+    let out = Command::new(env!("CARGO_BIN_EXE_scrim"))
+        .args(["run", "--config", "scrim.toml"])
+        .current_dir(dir.path())
+        .output()
+        .unwrap();
+    let err = String::from_utf8_lossy(&out.stderr);
+    assert_eq!(out.status.code(), Some(2), "{err}");
+    assert!(
+        err.contains("http.operator_token_file") && err.contains("chmod 600"),
+        "{err}"
+    );
+
+    std::fs::set_permissions(&token_path, std::fs::Permissions::from_mode(0o600)).unwrap();
+    let d = start(dir.path(), &cfg, &[]);
+    wait_until(|| get(&d.http, "/readyz").0 == 200, 20, "readyz");
+    let mut conn = TcpStream::connect(&d.tcp).unwrap();
+    writeln!(conn, "{{\"ts\":{},\"card\":\"c1\"}}", now_ms()).unwrap();
+    writeln!(conn, "not json").unwrap();
+    conn.flush().unwrap();
+    wait_until(
+        || {
+            let (_, body) = get_bearer(&d.http, "/v1/ingest", token);
+            serde_json::from_str::<serde_json::Value>(&body)
+                .is_ok_and(|v| v["accepted"] == 1 && v["rejected"] == 1)
+        },
+        10,
+        "counts on /v1/ingest with the token",
+    );
+    // Without the token (or with a wrong one) the operator endpoints answer 401.
+    assert_eq!(get(&d.http, "/metrics").0, 401);
+    assert_eq!(get(&d.http, "/v1/ingest").0, 401);
+    assert_eq!(get_bearer(&d.http, "/metrics", "0123456789abcdef").0, 401);
+    let (status, text) = get_bearer(&d.http, "/metrics", token);
+    assert_eq!(status, 200);
+    assert_eq!(
+        metric(&text, "scrim_events_total{outcome=\"accepted\"}"),
+        1.0
+    );
+    // Consumer endpoints stay open and carry no exact count.
+    let (status, body) = get(&d.http, "/v1/budget");
+    assert_eq!(status, 200);
+    let b: serde_json::Value = serde_json::from_str(&body).unwrap();
+    for name in ["accepted", "rejected", "late", "bounded"] {
+        assert!(b.get(name).is_none(), "/v1/budget shows {name}: {body}");
+    }
+    assert_eq!(get(&d.http, "/v1/releases").0, 200);
+}

@@ -971,9 +971,11 @@ fn dashboard_is_self_contained() {
     );
 }
 
-/// One fixture API: what `/v1/budget` returns and the records behind `/v1/releases`.
+/// One fixture API: what `/v1/budget` and `/v1/ingest` return (`None`: 401, a daemon with an
+/// operator token) and the records behind `/v1/releases`.
 struct Scenario {
     budget: Value,
+    ingest: Option<Value>,
     releases: Vec<Value>,
 }
 
@@ -1017,6 +1019,10 @@ fn serve_fixtures(
                 let (status, ctype, body) = match (scenarios.get(name), rest) {
                     (Some(_), "") => (200, "text/html; charset=utf-8", DASHBOARD.to_string()),
                     (Some(s), "v1/budget") => (200, "application/json", s.budget.to_string()),
+                    (Some(s), "v1/ingest") => match &s.ingest {
+                        Some(v) => (200, "application/json", v.to_string()),
+                        None => (401, "text/plain", "operator token required".to_string()),
+                    },
                     (Some(s), "v1/releases") => {
                         let after: Option<u64> = param("after").and_then(|a| a.parse().ok());
                         let limit: usize = param("limit")
@@ -1126,8 +1132,7 @@ fn fixture_scenarios() -> BTreeMap<&'static str, Scenario> {
     let unit = json!({"level": "unit", "unit": "card", "rho_per_epoch": 0.5, "epsilon_per_epoch": 3.2,
         "delta": 1e-9, "lifetime_rho": 4.0, "lifetime_spent_rho": 1.0, "lifetime_remaining_rho": 3.0,
         "epochs_charged": 2, "epochs_allowed": 8, "epoch": 1, "epoch_windows": 720,
-        "epoch_windows_closed": 100, "exhausted": null, "stats": fixture_stats(),
-        "accepted": 12345, "rejected": 67, "late": 8, "bounded": 90});
+        "epoch_windows_closed": 100, "exhausted": null, "stats": fixture_stats()});
     let mut exhausted = unit.clone();
     for (k, v) in [
         ("lifetime_spent_rho", json!(4.0)),
@@ -1147,8 +1152,7 @@ fn fixture_scenarios() -> BTreeMap<&'static str, Scenario> {
     let event = json!({"level": "event", "unit": null, "rho_per_epoch": 0.5, "epsilon_per_epoch": 3.2,
         "delta": 1e-9, "lifetime_rho": null, "lifetime_spent_rho": 0.5, "lifetime_remaining_rho": null,
         "epochs_charged": 1, "epochs_allowed": null, "epoch": 0, "epoch_windows": 720,
-        "epoch_windows_closed": 0, "exhausted": null, "stats": fixture_stats(),
-        "accepted": 0, "rejected": 0, "late": 0, "bounded": 0});
+        "epoch_windows_closed": 0, "exhausted": null, "stats": fixture_stats()});
     // Unit level, no event yet: nothing charged, the first epoch not started.
     let mut fresh = unit.clone();
     for (k, v) in [
@@ -1165,6 +1169,10 @@ fn fixture_scenarios() -> BTreeMap<&'static str, Scenario> {
             "unit",
             Scenario {
                 budget: unit,
+                ingest: Some(
+                    json!({"accepted": 12345, "rejected": 67, "late": 8, "bounded": 90,
+                    "rejected_by_reason": {"invalid_json": 67}}),
+                ),
                 releases: fixture_releases(Some(3)),
             },
         ),
@@ -1172,6 +1180,10 @@ fn fixture_scenarios() -> BTreeMap<&'static str, Scenario> {
             "fresh",
             Scenario {
                 budget: fresh,
+                ingest: Some(
+                    json!({"accepted": 0, "rejected": 0, "late": 0, "bounded": 0,
+                    "rejected_by_reason": {}}),
+                ),
                 releases: Vec::new(),
             },
         ),
@@ -1179,6 +1191,8 @@ fn fixture_scenarios() -> BTreeMap<&'static str, Scenario> {
             "exhausted",
             Scenario {
                 budget: exhausted,
+                // A daemon with an operator token: /v1/ingest answers 401.
+                ingest: None,
                 releases: fixture_releases(None)[..40].to_vec(),
             },
         ),
@@ -1186,6 +1200,10 @@ fn fixture_scenarios() -> BTreeMap<&'static str, Scenario> {
             "event",
             Scenario {
                 budget: event,
+                ingest: Some(
+                    json!({"accepted": 0, "rejected": 0, "late": 0, "bounded": 0,
+                    "rejected_by_reason": {}}),
+                ),
                 releases: Vec::new(),
             },
         ),
@@ -1534,6 +1552,18 @@ fn dashboard_shows_exhaustion_event_level_and_fresh_budgets() {
     // Epoch 8 has no window closed, so it is not charged: 8 of 8 charged leaves 0 windows
     // (counting its 720 windows as covered would be the off-by-one-epoch mistake).
     assert_eq!(eta.attr("data-remaining-windows"), Some("0"));
+    // This fixture's /v1/ingest answers 401 (operator token): the exact counts stay hidden
+    // and the rest of the page works.
+    assert_eq!(
+        by_id(&all, "counts").attr("data-access"),
+        Some("token-required")
+    );
+    assert!(
+        all.iter()
+            .filter(|t| t.attr("data-count").is_some())
+            .all(|t| t.attr("data-value").is_none()),
+        "no count is shown without the token"
+    );
 
     let html = event;
     let all = tags(&html);
@@ -1682,7 +1712,7 @@ fn dashboard_renders_a_live_daemon_fed_the_demo_feed() {
     wait_until(
         || {
             let n = all_releases(&d.http).len();
-            let b = get_json(&d.http, "/v1/budget");
+            let b = get_json(&d.http, "/v1/ingest");
             let counts = format!("{} {} {}", b["accepted"], b["rejected"], b["late"]);
             stable = if n > 0 && (n, counts.clone()) == last {
                 stable + 1
@@ -1697,6 +1727,11 @@ fn dashboard_renders_a_live_daemon_fed_the_demo_feed() {
     );
     let releases = all_releases(&d.http);
     let budget = get_json(&d.http, "/v1/budget");
+    let ingest = get_json(&d.http, "/v1/ingest");
+    // The consumer endpoint carries no exact count (they are operator data).
+    for name in ["accepted", "rejected", "late", "bounded"] {
+        assert!(budget.get(name).is_none(), "/v1/budget leaks {name}");
+    }
 
     let shot = Path::new(env!("CARGO_TARGET_TMPDIR"))
         .parent()
@@ -1713,7 +1748,7 @@ fn dashboard_renders_a_live_daemon_fed_the_demo_feed() {
     );
     // The page saw the daemon at some moment between the snapshots taken before and after.
     let releases_after = all_releases(&d.http).len();
-    let budget_after = get_json(&d.http, "/v1/budget");
+    let ingest_after = get_json(&d.http, "/v1/ingest");
     let all = tags(&html);
     assert_healthy_page(&html, &all);
     let body = all.iter().find(|t| t.name == "body").unwrap();
@@ -1732,8 +1767,8 @@ fn dashboard_renders_a_live_daemon_fed_the_demo_feed() {
             .unwrap();
         let shown: u64 = tile.attr("data-value").unwrap().parse().unwrap();
         let (lo, hi) = (
-            budget[name].as_u64().unwrap(),
-            budget_after[name].as_u64().unwrap(),
+            ingest[name].as_u64().unwrap(),
+            ingest_after[name].as_u64().unwrap(),
         );
         assert!(
             (lo..=hi).contains(&shown),

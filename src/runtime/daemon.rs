@@ -93,13 +93,27 @@ pub struct BudgetView {
     pub exhausted: Option<String>,
     /// Per statistic: rho per epoch and lifetime spent.
     pub stats: Vec<StatBudget>,
-    /// Counters for the dashboard.
+    /// Exact ingest counts: never part of `/v1/budget`, served by the operator endpoint
+    /// `/v1/ingest` (see [`IngestView`]).
+    #[serde(skip)]
+    pub ingest: IngestView,
+}
+
+/// Exact operational counts for operators (`/v1/ingest`, behind the operator token when one
+/// is configured). They are raw counts of the input, *not* differentially private: the
+/// accepted count alone is an un-noised event count. That is why they are kept out of the
+/// consumer endpoints.
+#[derive(Clone, Debug, Default, Serialize)]
+pub struct IngestView {
+    /// Events accepted into an open window.
     pub accepted: u64,
     /// Rejected lines.
     pub rejected: u64,
+    /// Rejected lines by reason.
+    pub rejected_by_reason: std::collections::BTreeMap<String, u64>,
     /// Late events.
     pub late: u64,
-    /// Dropped by bounds.
+    /// Dropped by the per-unit bounds.
     pub bounded: u64,
 }
 
@@ -126,6 +140,8 @@ pub struct Shared {
     pub metrics: Arc<Mutex<Metrics>>,
     /// Set once state is loaded and sources are open.
     pub ready: AtomicBool,
+    /// Bearer token required by the operator endpoints, if configured.
+    pub operator_token: Option<String>,
 }
 
 fn budget_view(engine: &Engine) -> BudgetView {
@@ -166,11 +182,45 @@ fn budget_view(engine: &Engine) -> BudgetView {
                 },
             })
             .collect(),
-        accepted: c.accepted,
-        rejected: c.rejected_total(),
-        late: c.late,
-        bounded: c.dropped_event_bound + c.dropped_window_bound,
+        ingest: IngestView {
+            accepted: c.accepted,
+            rejected: c.rejected_total(),
+            rejected_by_reason: c
+                .rejected
+                .iter()
+                .map(|(k, v)| ((*k).to_string(), *v))
+                .collect(),
+            late: c.late,
+            bounded: c.dropped_event_bound + c.dropped_window_bound,
+        },
     }
+}
+
+/// Reads the operator token from `http.operator_token_file`: one line, at least 16
+/// characters, in a file that only its owner can read (like the state directory's key).
+pub fn read_operator_token(path: &std::path::Path) -> Result<String, AppError> {
+    use std::os::unix::fs::PermissionsExt;
+    let bad = |why: String| {
+        AppError::Config(crate::config::ConfigError::Invalid {
+            key: "http.operator_token_file".to_string(),
+            reason: format!("{}: {why}", path.display()),
+        })
+    };
+    let meta = std::fs::metadata(path).map_err(|e| bad(format!("cannot read it ({e})")))?;
+    if meta.permissions().mode() & 0o077 != 0 {
+        return Err(bad(
+            "other users can read it; run `chmod 600` on it (it guards exact counts)".to_string(),
+        ));
+    }
+    let text = std::fs::read_to_string(path).map_err(|e| bad(format!("cannot read it ({e})")))?;
+    let token = text.trim().to_string();
+    if token.len() < 16 || token.contains(char::is_whitespace) {
+        return Err(bad(
+            "the token must be one line of at least 16 characters without spaces (e.g. `openssl rand -hex 32`)"
+                .to_string(),
+        ));
+    }
+    Ok(token)
 }
 
 /// Seconds until the lifetime budget runs out at one window of event time per window length.
@@ -315,11 +365,16 @@ pub async fn run(config: Config, seed: Option<u64>) -> Result<(), AppError> {
     for r in restored {
         store.push(r);
     }
+    let operator_token = match &config.http.operator_token_file {
+        Some(path) => Some(read_operator_token(path)?),
+        None => None,
+    };
     let shared = Arc::new(Shared {
         releases: RwLock::new(store),
         budget: budget_rx,
         metrics: metrics.clone(),
         ready: AtomicBool::new(false),
+        operator_token,
     });
     let (shutdown_tx, shutdown_rx) = watch::channel(false);
     let (tx, mut rx) = mpsc::channel::<Batch>(QUEUE_BATCHES);
@@ -577,6 +632,8 @@ pub async fn serve_snapshot(
         budget: budget_rx,
         metrics: Arc::new(Mutex::new(metrics)),
         ready: AtomicBool::new(true),
+        // `demo --serve` listens on loopback and shows invented data only.
+        operator_token: None,
     });
     let listener = tokio::net::TcpListener::bind(listen)
         .await

@@ -1,12 +1,18 @@
 //! The HTTP API (axum): cursor pulls of releases, the budget, Prometheus metrics, health
-//! probes and the dashboard page. Handlers only read published snapshots; no endpoint can
-//! reach an un-noised value because none exists outside the engine.
+//! probes and the dashboard page. Handlers only read published snapshots.
+//!
+//! Two kinds of endpoint:
+//! - *Consumer* endpoints (`/v1/releases`, `/v1/budget`, `/`, probes) show only released,
+//!   noisy values and the (public) budget.
+//! - *Operator* endpoints (`/metrics`, `/v1/ingest`) show exact operational counts (events
+//!   accepted, rejected, late), which are raw functions of the input and not differentially
+//!   private. With `http.operator_token_file` they require `Authorization: Bearer <token>`.
 
 use std::sync::Arc;
 use std::sync::atomic::Ordering;
 
 use axum::extract::{Query, State};
-use axum::http::{StatusCode, header};
+use axum::http::{HeaderMap, StatusCode, header};
 use axum::response::{Html, IntoResponse, Response};
 use axum::routing::get;
 use axum::{Json, Router};
@@ -24,6 +30,7 @@ pub fn router(shared: Arc<Shared>) -> Router {
         .route("/v1/releases", get(releases))
         .route("/v1/budget", get(budget))
         .route("/metrics", get(metrics))
+        .route("/v1/ingest", get(ingest))
         .route("/healthz", get(|| async { "ok\n" }))
         .route("/readyz", get(readyz))
         .with_state(shared)
@@ -50,7 +57,47 @@ async fn budget(State(s): State<Arc<Shared>>) -> Response {
     Json((*view).clone()).into_response()
 }
 
-async fn metrics(State(s): State<Arc<Shared>>) -> Response {
+/// Whether `headers` carry the operator token (always true when none is configured). The
+/// comparison runs over every byte whatever the first mismatch, so its time does not tell an
+/// attacker how much of a guess was right.
+fn authorised(s: &Shared, headers: &HeaderMap) -> bool {
+    let Some(token) = &s.operator_token else {
+        return true;
+    };
+    let given = headers
+        .get(header::AUTHORIZATION)
+        .and_then(|v| v.to_str().ok())
+        .and_then(|v| v.strip_prefix("Bearer "))
+        .unwrap_or("");
+    let (a, b) = (given.as_bytes(), token.as_bytes());
+    let mut diff = u8::from(a.len() != b.len());
+    for (i, t) in b.iter().enumerate() {
+        diff |= a.get(i).copied().unwrap_or(0) ^ t;
+    }
+    diff == 0
+}
+
+fn unauthorised() -> Response {
+    (
+        StatusCode::UNAUTHORIZED,
+        [(header::WWW_AUTHENTICATE, "Bearer")],
+        "operator endpoint: send Authorization: Bearer <token from http.operator_token_file>\n",
+    )
+        .into_response()
+}
+
+async fn ingest(State(s): State<Arc<Shared>>, headers: HeaderMap) -> Response {
+    if !authorised(&s, &headers) {
+        return unauthorised();
+    }
+    let view = s.budget.borrow().clone();
+    Json(view.ingest.clone()).into_response()
+}
+
+async fn metrics(State(s): State<Arc<Shared>>, headers: HeaderMap) -> Response {
+    if !authorised(&s, &headers) {
+        return unauthorised();
+    }
     let text = s.metrics.lock().map(|m| m.render()).unwrap_or_default();
     ([(header::CONTENT_TYPE, "text/plain; version=0.0.4")], text).into_response()
 }
