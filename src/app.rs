@@ -309,6 +309,9 @@ fn replay_with_state(
     let mut lines = 0u64;
     if !finished {
         use std::io::Seek;
+        // The lines after the last offset are read again below: drop their old copies.
+        st.discard_unconfirmed_lines()
+            .map_err(io(format!("writing state in {}", state_dir.display())))?;
         let mut f =
             std::fs::File::open(input).map_err(io(format!("opening input {}", input.display())))?;
         f.seek(std::io::SeekFrom::Start(offset))

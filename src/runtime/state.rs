@@ -312,6 +312,8 @@ pub struct StateDir {
     dirty: bool,
     generation: u32,
     carry: Carry,
+    /// See [`StateDir::discard_unconfirmed_lines`]; `None` once anything was appended.
+    trailing_lines_from: Option<u64>,
     /// Held for the lifetime of the value: one process per state directory.
     _lock: File,
 }
@@ -743,7 +745,7 @@ fn cleanup(dir: &Path, current: u32) -> Result<(), StateError> {
 }
 
 /// Reads a generation's log (cutting nothing).
-fn read_generation_log(dir: &Path, g: u32) -> Result<(PathBuf, Vec<WalRecord>, u64), StateError> {
+fn read_generation_log(dir: &Path, g: u32) -> Result<(PathBuf, WalRead), StateError> {
     let wal_path = dir.join(wal_name(g));
     if g > 0 && !wal_path.exists() {
         return Err(corrupt(
@@ -751,8 +753,8 @@ fn read_generation_log(dir: &Path, g: u32) -> Result<(PathBuf, Vec<WalRecord>, u
             "the log of the current generation is missing",
         ));
     }
-    let (records, valid_len) = read_wal(&wal_path)?;
-    Ok((wal_path, records, valid_len))
+    let read = read_wal(&wal_path)?;
+    Ok((wal_path, read))
 }
 
 impl StateDir {
@@ -820,7 +822,8 @@ impl StateDir {
             return Err(corrupt(&config_path, "missing"));
         }
         cleanup(dir, g)?;
-        let (wal_path, records, valid_len) = read_generation_log(dir, g)?;
+        let (wal_path, read) = read_generation_log(dir, g)?;
+        let (records, valid_len) = (read.records, read.valid_len);
         // Cut a torn tail so new records follow the last valid one.
         if wal_path.exists() {
             let f = OpenOptions::new()
@@ -842,6 +845,7 @@ impl StateDir {
                     .last()
                     .map(Generation::carry)
                     .unwrap_or_default(),
+                trailing_lines_from: read.trailing_lines_from,
                 _lock: lock,
             },
             key,
@@ -859,7 +863,24 @@ impl StateDir {
         self.generation
     }
 
+    /// `replay --state`, before it reads on: cuts the line records logged after the last
+    /// offset record. [`replay_log`] skips them and the replay reads those lines again from
+    /// the input at that offset; left in the log, they would sit before the next offset
+    /// record and be replayed — counted twice — after the next restart. (A log ends with
+    /// such lines when a crash struck after the write buffer reached the file but before the
+    /// next offset record.) Does nothing for logs that do not end that way.
+    pub fn discard_unconfirmed_lines(&mut self) -> std::io::Result<()> {
+        if let Some(end) = self.trailing_lines_from.take() {
+            self.wal.flush()?;
+            let f = self.wal.get_ref();
+            f.set_len(end)?;
+            f.sync_all()?;
+        }
+        Ok(())
+    }
+
     fn append(&mut self, kind: u8, payload: &[u8]) -> std::io::Result<()> {
+        self.trailing_lines_from = None;
         let len =
             u32::try_from(payload.len()).map_err(|_| std::io::Error::other("record too large"))?;
         self.wal.write_all(&len.to_le_bytes())?;
@@ -938,14 +959,30 @@ impl StateDir {
     }
 }
 
-/// Reads every valid record; returns them and the byte length of the valid prefix.
-fn read_wal(path: &Path) -> Result<(Vec<WalRecord>, u64), StateError> {
+/// A log as read back.
+struct WalRead {
+    records: Vec<WalRecord>,
+    /// Byte length of the valid prefix.
+    valid_len: u64,
+    /// Where the run of line records after the last offset record starts, when the log ends
+    /// with such a run (see [`StateDir::discard_unconfirmed_lines`]).
+    trailing_lines_from: Option<u64>,
+}
+
+/// Reads every valid record.
+fn read_wal(path: &Path) -> Result<WalRead, StateError> {
     let mut bytes = Vec::new();
     match File::open(path) {
         Ok(mut f) => {
             f.read_to_end(&mut bytes).map_err(io_err(path))?;
         }
-        Err(e) if e.kind() == std::io::ErrorKind::NotFound => return Ok((Vec::new(), 0)),
+        Err(e) if e.kind() == std::io::ErrorKind::NotFound => {
+            return Ok(WalRead {
+                records: Vec::new(),
+                valid_len: 0,
+                trailing_lines_from: None,
+            });
+        }
         Err(e) => {
             return Err(StateError::Io {
                 path: path.to_path_buf(),
@@ -955,9 +992,11 @@ fn read_wal(path: &Path) -> Result<(Vec<WalRecord>, u64), StateError> {
     }
     let mut out = Vec::new();
     let mut pos = 0usize;
+    // End of the last record that is not a line, and whether it was an offset record.
+    let mut last_non_line: Option<(usize, bool)> = None;
     while pos < bytes.len() {
         let rest = &bytes[pos..];
-        let torn = |detail: &str| -> Result<(Vec<WalRecord>, u64), StateError> {
+        let torn = |detail: &str| -> Result<WalRead, StateError> {
             Err(StateError::Corrupt {
                 path: path.to_path_buf(),
                 detail: format!("{detail} at byte {pos}"),
@@ -997,10 +1036,24 @@ fn read_wal(path: &Path) -> Result<(Vec<WalRecord>, u64), StateError> {
             },
             _ => return torn("unknown record kind"),
         };
+        let is_line = matches!(rec, WalRecord::Line(_));
+        let is_offset = matches!(rec, WalRecord::Offset { .. });
         out.push(rec);
         pos += 9 + len;
+        if !is_line {
+            last_non_line = Some((pos, is_offset));
+        }
     }
-    Ok((out, pos as u64))
+    let trailing_lines_from = match last_non_line {
+        None if pos > 0 => Some(0),
+        Some((end, true)) if end < pos => Some(end as u64),
+        _ => None,
+    };
+    Ok(WalRead {
+        records: out,
+        valid_len: pos as u64,
+        trailing_lines_from,
+    })
 }
 
 fn decode_batch(p: &[u8]) -> Option<WalRecord> {
@@ -1228,7 +1281,7 @@ impl Current {
             })?
         };
         cleanup(dir, g)?;
-        let (_, records, _) = read_generation_log(dir, g)?;
+        let records = read_generation_log(dir, g)?.1.records;
         Ok(Current {
             dir: dir.to_path_buf(),
             meta,
@@ -1353,7 +1406,7 @@ pub fn inspect(dir: &Path) -> Result<Summary, StateError> {
     if config_stored {
         read_config(&config_path, &pinned)?;
     }
-    let (_, records, valid_len) = read_generation_log(dir, g)?;
+    let read = read_generation_log(dir, g)?.1;
     Ok(Summary {
         dir: dir.to_path_buf(),
         format: meta.format,
@@ -1362,8 +1415,8 @@ pub fn inspect(dir: &Path) -> Result<Summary, StateError> {
         generation: g,
         config_fingerprint: pinned,
         config_stored,
-        log_records: records.len(),
-        log_bytes: valid_len,
+        log_records: read.records.len(),
+        log_bytes: read.valid_len,
         generations,
     })
 }
@@ -1443,6 +1496,60 @@ zone = ["a", "b"]
                     offset: None
                 },
             ]
+        );
+    }
+
+    /// Lines logged after the last offset record are read again from the input by a
+    /// resumed replay; their old copies are cut so that no later restart counts them twice.
+    #[test]
+    fn lines_after_the_last_offset_are_discarded_before_a_replay_resumes() {
+        let dir = tempfile::tempdir().unwrap();
+        let (mut s, _, _) = StateDir::open(dir.path(), &cfg(), Some(1)).unwrap();
+        s.log_line(b"a").unwrap();
+        s.log_offset(0, 2).unwrap();
+        s.log_line(b"b").unwrap();
+        s.log_line(b"c").unwrap();
+        s.sync().unwrap();
+        drop(s);
+        let (mut s, _, recs) = StateDir::open(dir.path(), &cfg(), Some(1)).unwrap();
+        assert_eq!(recs.len(), 4);
+        s.discard_unconfirmed_lines().unwrap();
+        s.log_line(b"b").unwrap();
+        s.log_offset(0, 4).unwrap();
+        s.sync().unwrap();
+        drop(s);
+        let (mut s, _, recs) = StateDir::open(dir.path(), &cfg(), Some(1)).unwrap();
+        let offset = |o| WalRecord::Offset {
+            source: 0,
+            offset: o,
+        };
+        let line = |l: &[u8]| WalRecord::Line(l.to_vec());
+        assert_eq!(
+            recs,
+            vec![line(b"a"), offset(2), line(b"b"), offset(4)],
+            "the stale copies of b and c are gone"
+        );
+        // A log that ends with an offset (or holds no line) keeps everything.
+        s.discard_unconfirmed_lines().unwrap();
+        drop(s);
+        assert_eq!(
+            StateDir::open(dir.path(), &cfg(), Some(1)).unwrap().2.len(),
+            4
+        );
+        // Lines and no offset at all: the replay reads everything again.
+        let dir = tempfile::tempdir().unwrap();
+        let (mut s, _, _) = StateDir::open(dir.path(), &cfg(), Some(1)).unwrap();
+        s.log_line(b"a").unwrap();
+        s.sync().unwrap();
+        drop(s);
+        let (mut s, _, _) = StateDir::open(dir.path(), &cfg(), Some(1)).unwrap();
+        s.discard_unconfirmed_lines().unwrap();
+        drop(s);
+        assert!(
+            StateDir::open(dir.path(), &cfg(), Some(1))
+                .unwrap()
+                .2
+                .is_empty()
         );
     }
 
