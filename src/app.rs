@@ -473,16 +473,7 @@ pub fn state_new_epoch(
     };
     // The first window boundary of the new configuration at or after `start`.
     let window_ms = new_config.window.length.0;
-    let start = start.map(|s| {
-        Millis(
-            s.0.div_euclid(window_ms) * window_ms
-                + if s.0.rem_euclid(window_ms) == 0 {
-                    0
-                } else {
-                    window_ms
-                },
-        )
-    });
+    let start = start.map(|s| Millis((s.0 + window_ms - 1).div_euclid(window_ms) * window_ms));
     let abandoned_epoch = match old.epoch_position() {
         Some((e, closed)) if closed > 0 && ledger.last_epoch() == Some(e) => Some(e),
         _ => None,

@@ -467,7 +467,8 @@ fn write_meta(dir: &Path, meta: &Meta) -> Result<(), StateError> {
     write_atomic(&path, text.as_bytes()).map_err(io_err(&path))
 }
 
-/// The noise key: the seed's, or the stored one (created when `create` and there is none).
+/// The noise key: the seed's, or the stored one (created from the OS when there is no
+/// state yet).
 fn load_key(dir: &Path, seed: Option<u64>, meta: Option<&Meta>) -> Result<NoiseKey, StateError> {
     let key_path = dir.join(KEY);
     let meta_path = dir.join(META);
