@@ -260,76 +260,59 @@ fn replay_with_state(
     key: KeySource,
     input: &Path,
 ) -> Result<ReplaySummary, AppError> {
-    use crate::runtime::state::{self, StateDir, WalRecord};
+    use crate::runtime::state::{self, StateDir};
     let seed = match key {
         KeySource::Seed(s) => Some(s),
         KeySource::Os => None,
     };
-    let (mut st, key, records) = StateDir::open(state_dir, &config.fingerprint(), seed)
-        .map_err(|e| AppError::State(e.to_string()))?;
-    let mut engine = Engine::new(
+    let (mut st, key, records) =
+        StateDir::open(state_dir, config, seed).map_err(|e| AppError::State(e.to_string()))?;
+    let carry = st.carry().clone();
+    let mut engine = Engine::with_carry(
         config,
         key,
         EngineOptions {
             seeded: seed.is_some(),
             danger_keep_truth: false,
         },
+        &carry,
     )?;
     // Lines logged after the last offset record are re-read from the input instead (only
-    // logs written before batches were used hold such `Line` records).
-    let last_offset_at = records
-        .iter()
-        .rposition(|r| matches!(r, WalRecord::Offset { .. }));
-    let mut offset = 0u64;
-    let mut finished = false;
-    for (i, r) in records.iter().enumerate() {
-        match r {
-            WalRecord::Line(l) if last_offset_at.is_some_and(|j| i < j) => engine.handle_line(l),
-            WalRecord::Line(_) => {}
-            WalRecord::Tick(t) => engine.handle_tick(*t),
-            WalRecord::Reject(_) => {}
-            WalRecord::Offset { offset: o, .. } => offset = *o,
-            WalRecord::Finish => {
-                engine.finish();
-                finished = true;
-            }
-            WalRecord::Batch { lines, offset: o } => {
-                for l in lines {
-                    engine.handle_line(l);
-                }
-                if let Some((_, o)) = o {
-                    offset = *o;
-                }
-            }
-        }
-    }
+    // logs written before replay logged batches hold such `Line` records).
+    let pos = state::replay_log(&mut engine, &records, 1);
+    let mut offset = pos.input_offset;
+    let finished = pos.finished;
     std::fs::create_dir_all(out_dir).map_err(io(format!("creating {}", out_dir.display())))?;
     let rel_path = out_dir.join("releases.jsonl");
     let published = state::published_seq(&rel_path).map_err(|e| AppError::State(e.to_string()))?;
     let mut sink =
         JsonlSink::open(out_dir).map_err(io(format!("opening {}", rel_path.display())))?;
-    let mut regenerated = 0u64;
+    let mut last_regenerated = None;
     let mut n_releases = 0u64;
     while let Some(r) = engine.poll_release() {
-        regenerated += 1;
+        last_regenerated = Some(r.seq);
         if published.is_none_or(|p| r.seq > p) {
             sink.publish(&r).map_err(io("writing releases"))?;
             n_releases += 1;
         }
     }
-    if let Some(p) = published
-        && (regenerated == 0 || p >= regenerated)
-    {
-        return Err(AppError::State(format!(
-            "{} holds releases up to seq {p} but the state in {} only reproduces {regenerated}: the state is truncated or older than the output; restore both from the same backup",
-            rel_path.display(),
-            state_dir.display()
-        )));
+    // When this refuses, no record was written above: all regenerated seqs are ≤ published.
+    state::check_output(published, last_regenerated, &carry, &rel_path, state_dir)
+        .map_err(|e| AppError::State(e.to_string()))?;
+    if let Some((first, last)) = state::missing_from_output(published, &carry) {
+        tracing::warn!(
+            first,
+            last,
+            "releases.jsonl lacks records an earlier state generation published; they cannot be regenerated"
+        );
     }
     sink.flush().map_err(io("writing releases"))?;
     let mut lines = 0u64;
     if !finished {
         use std::io::Seek;
+        // The lines after the last offset are read again below: drop their old copies.
+        st.discard_unconfirmed_lines()
+            .map_err(io(format!("writing state in {}", state_dir.display())))?;
         let mut f =
             std::fs::File::open(input).map_err(io(format!("opening input {}", input.display())))?;
         f.seek(std::io::SeekFrom::Start(offset))
@@ -400,6 +383,315 @@ fn replay_with_state(
         halted: engine.halted().map(ToString::to_string),
         unit_table: unit_table(&engine),
     })
+}
+
+/// Options of `scrim state new-epoch`.
+#[derive(Clone, Debug)]
+pub struct NewEpochArgs {
+    /// The configuration the new epoch runs under.
+    pub config: PathBuf,
+    /// State directory (default: the new configuration's `state.dir`).
+    pub state: Option<PathBuf>,
+    /// Output directory (default: the new configuration's `output.dir`).
+    pub out: Option<PathBuf>,
+    /// The configuration the state currently runs under, for states that do not store it.
+    pub previous_config: Option<PathBuf>,
+    /// Why; recorded in the ledger.
+    pub reason: String,
+    /// Start of the new epoch (RFC 3339); default the end of the last closed window.
+    pub start: Option<String>,
+    /// The state's key source (`--seed` for seeded states).
+    pub key: KeySource,
+}
+
+/// `scrim state new-epoch`: abandons the current epoch and starts a new generation of the
+/// state pinned to a (possibly different) configuration; see [`crate::runtime::state`].
+///
+/// The current generation is replayed with the configuration it is pinned to, which tells
+/// what it spent, the last window it closed, the last epoch it charged and the next seq.
+/// The new generation starts at the first window after that (or at `--start`), with the next
+/// epoch index and seq, and its ledger charges the new configuration's epochs on top of the
+/// lifetime spend (Bun & Steinke 2016: zCDP composes additively). Nothing changes, and the
+/// error is [`AppError::Budget`] (exit 3), when the lifetime budget cannot pay for one epoch
+/// of the new configuration. Releases the old log makes durable but `releases.jsonl` lacks
+/// are written first, since the old log is deleted at the end.
+pub fn state_new_epoch(
+    args: &NewEpochArgs,
+    w: &mut dyn Write,
+) -> Result<crate::runtime::state::Generation, AppError> {
+    use crate::engine::core::Carry;
+    use crate::engine::ledger::BudgetError;
+    use crate::engine::time::Millis;
+    use crate::runtime::state::{self, Current, Generation, StateError};
+    let state_err = |e: StateError| AppError::State(e.to_string());
+    let new_config = Config::load(&args.config)?;
+    let dir = args
+        .state
+        .clone()
+        .unwrap_or_else(|| new_config.state.dir.clone());
+    let out_dir = args
+        .out
+        .clone()
+        .unwrap_or_else(|| new_config.output.dir.clone());
+    if args.reason.trim().is_empty() {
+        return Err(AppError::Usage(
+            "--reason must say why the epoch is cut short (it is kept in the ledger)".to_string(),
+        ));
+    }
+    let requested_start = match &args.start {
+        None => None,
+        Some(t) => Some(Millis::parse_rfc3339(t).ok_or_else(|| {
+            AppError::Usage(format!(
+                "--start {t:?} is not an RFC 3339 time such as 2026-03-09T00:00:00Z"
+            ))
+        })?),
+    };
+    let previous = match &args.previous_config {
+        Some(p) => Some(Config::load(p)?),
+        None => None,
+    };
+    let seed = match args.key {
+        KeySource::Seed(s) => Some(s),
+        KeySource::Os => None,
+    };
+    let cur = Current::open(&dir, seed, previous.as_ref()).map_err(state_err)?;
+    let opts = EngineOptions {
+        seeded: seed.is_some(),
+        danger_keep_truth: false,
+    };
+
+    // 1. Where the current generation stands, from its own log and configuration.
+    let old_carry = cur.carry();
+    let mut old = Engine::with_carry(&cur.config, cur.key.clone(), opts.clone(), &old_carry)?;
+    state::replay_log(&mut old, &cur.records, 0);
+    let regenerated: Vec<Release> = std::iter::from_fn(|| old.poll_release()).collect();
+    let ledger = old.ledger();
+    // Windows before this were released (or belong to an earlier generation).
+    let earliest = old.last_closed_end().or(old_carry.start);
+    let start = match (requested_start, earliest) {
+        (Some(s), Some(e)) if s < e => {
+            return Err(state_err(StateError::StartTooEarly {
+                start: s.to_rfc3339(),
+                earliest: e.to_rfc3339(),
+            }));
+        }
+        (Some(s), _) => Some(s),
+        (None, e) => e,
+    };
+    // The first window boundary of the new configuration at or after `start`.
+    let window_ms = new_config.window.length.0;
+    let start = start.map(|s| Millis((s.0 + window_ms - 1).div_euclid(window_ms) * window_ms));
+    let abandoned_epoch = match old.epoch_position() {
+        Some((e, closed)) if closed > 0 && ledger.last_epoch() == Some(e) => Some(e),
+        _ => None,
+    };
+    let carry = Carry {
+        start,
+        first_epoch: ledger.last_epoch().map_or(0, |e| e + 1),
+        next_seq: regenerated.last().map_or(old_carry.next_seq, |r| r.seq + 1),
+        spent_rho: ledger.spent(),
+        epochs_charged: ledger.epochs_charged(),
+    };
+
+    // 2. The new configuration: same privacy unit, and its first epoch must be affordable.
+    let unit = |c: &Config| {
+        c.input
+            .unit_field
+            .clone()
+            .map_or_else(|| "event level".to_string(), |u| format!("unit `{u}`"))
+    };
+    if cur.config.input.unit_field != new_config.input.unit_field {
+        return Err(state_err(StateError::UnitChanged {
+            old: unit(&cur.config),
+            new: unit(&new_config),
+        }));
+    }
+    let new_engine = Engine::with_carry(&new_config, cur.key.clone(), opts, &carry)?;
+    let mut probe = new_engine.ledger().clone();
+    if let Err(BudgetError::Exhausted {
+        needed, lifetime, ..
+    }) = probe.charge_epoch(carry.first_epoch)
+    {
+        return Err(AppError::Budget(
+            StateError::OverBudget {
+                spent: carry.spent_rho,
+                needed,
+                lifetime,
+            }
+            .to_string(),
+        ));
+    }
+    let affordable = new_engine.ledger().epochs_affordable();
+
+    // 3. The output must not be ahead of the state; records only the old log can
+    //    regenerate are written now, before that log is deleted.
+    std::fs::create_dir_all(&out_dir).map_err(io(format!("creating {}", out_dir.display())))?;
+    let rel_path = out_dir.join("releases.jsonl");
+    let published = state::published_seq(&rel_path).map_err(state_err)?;
+    state::check_output(
+        published,
+        regenerated.last().map(|r| r.seq),
+        &old_carry,
+        &rel_path,
+        &dir,
+    )
+    .map_err(state_err)?;
+    let mut sink =
+        JsonlSink::open(&out_dir).map_err(io(format!("opening {}", rel_path.display())))?;
+    let mut n_written = 0u64;
+    for r in regenerated
+        .iter()
+        .filter(|r| published.is_none_or(|p| r.seq > p))
+    {
+        sink.publish(r).map_err(io("writing releases"))?;
+        n_written += 1;
+    }
+    sink.flush().map_err(io("writing releases"))?;
+
+    // 4. Commit the new generation.
+    let previous_fingerprint = cur.fingerprint().to_string();
+    let old_generation = cur.generation();
+    let g = cur
+        .commit(
+            &new_config,
+            Generation {
+                generation: 0,
+                created: crate::runtime::now().to_rfc3339(),
+                reason: args.reason.trim().to_string(),
+                config_fingerprint: String::new(),
+                previous_fingerprint,
+                start_ms: carry.start.map(|s| s.0),
+                first_epoch: carry.first_epoch,
+                next_seq: carry.next_seq,
+                spent_rho: carry.spent_rho,
+                epochs_charged: carry.epochs_charged,
+                abandoned_epoch,
+                check: String::new(),
+            },
+        )
+        .map_err(state_err)?;
+    let mut report = || -> std::io::Result<()> {
+        writeln!(
+            w,
+            "scrim state new-epoch: generation {} started in {}",
+            g.generation,
+            dir.display()
+        )?;
+        writeln!(w, "  reason     {}", g.reason)?;
+        writeln!(
+            w,
+            "  previous   generation {old_generation}: {} epoch(s) charged in all, lifetime rho spent {}{}",
+            g.epochs_charged,
+            g.spent_rho,
+            match g.abandoned_epoch {
+                Some(e) => format!("; epoch {e} abandoned (its charge stays spent)"),
+                None => String::new(),
+            }
+        )?;
+        if n_written > 0 {
+            writeln!(
+                w,
+                "             {n_written} durable release(s) missing from {} were written first",
+                rel_path.display()
+            )?;
+        }
+        writeln!(
+            w,
+            "  new        fingerprint {}; epoch {} starts {}; seq continues at {}",
+            g.config_fingerprint,
+            g.first_epoch,
+            g.start_ms
+                .map_or("at the first event".to_string(), |s| format!(
+                    "at {}",
+                    Millis(s).to_rfc3339()
+                )),
+            g.next_seq
+        )?;
+        writeln!(
+            w,
+            "  budget     rho {} per epoch; {}",
+            new_config.privacy.rho_per_epoch,
+            match (new_config.privacy.unit_bounds, affordable) {
+                (Some(b), Some(n)) => format!(
+                    "lifetime_rho {} covers {n} more epoch(s) on top of the {} spent",
+                    b.lifetime_rho, g.spent_rho
+                ),
+                _ => "event level: epochs hold disjoint events (parallel composition)".to_string(),
+            }
+        )?;
+        writeln!(
+            w,
+            "  the previous generation's log (raw input lines) was deleted; earlier events are counted late"
+        )
+    };
+    report().map_err(io("printing"))?;
+    Ok(g)
+}
+
+/// `scrim state show`: what the state directory holds, without the key; changes nothing.
+pub fn state_show(dir: &Path, json: bool, w: &mut dyn Write) -> Result<(), AppError> {
+    use crate::engine::time::Millis;
+    let s = crate::runtime::state::inspect(dir).map_err(|e| AppError::State(e.to_string()))?;
+    let mut print = || -> std::io::Result<()> {
+        if json {
+            return writeln!(
+                w,
+                "{}",
+                serde_json::to_string_pretty(&s).unwrap_or_default()
+            );
+        }
+        writeln!(w, "state      {}", s.dir.display())?;
+        writeln!(
+            w,
+            "format     {}{}; key fingerprint {}",
+            s.format,
+            if s.seeded {
+                ", SEEDED (not private)"
+            } else {
+                ""
+            },
+            s.key_fingerprint
+        )?;
+        writeln!(
+            w,
+            "generation {} pinned to config fingerprint {} (configuration {}stored)",
+            s.generation,
+            s.config_fingerprint,
+            if s.config_stored { "" } else { "not " }
+        )?;
+        writeln!(
+            w,
+            "log        {} record(s), {} bytes",
+            s.log_records, s.log_bytes
+        )?;
+        if s.generations.is_empty() {
+            writeln!(w, "ledger     no fresh epoch so far (generation 0)")?;
+        }
+        for g in &s.generations {
+            writeln!(
+                w,
+                "ledger     generation {} at {}: {:?}",
+                g.generation, g.created, g.reason
+            )?;
+            writeln!(
+                w,
+                "             before it: rho {} spent over {} epoch(s){}; it starts with epoch {} {} and seq {}",
+                g.spent_rho,
+                g.epochs_charged,
+                g.abandoned_epoch
+                    .map_or(String::new(), |e| format!(", epoch {e} abandoned")),
+                g.first_epoch,
+                g.start_ms
+                    .map_or("at its first event".to_string(), |t| format!(
+                        "at {}",
+                        Millis(t).to_rfc3339()
+                    )),
+                g.next_seq
+            )?;
+        }
+        Ok(())
+    };
+    print().map_err(io("printing"))
 }
 
 /// Loads a config and plans it for `mechanism` (or the configured one).

@@ -73,6 +73,12 @@ enum Command {
         #[arg(long)]
         insecure_seed: bool,
     },
+    /// Inspect the state directory, or start a fresh epoch deliberately (to change the
+    /// configuration mid-deployment).
+    State {
+        #[command(subcommand)]
+        command: StateCommand,
+    },
     /// Show the budget plan and the expected errors before any data.
     Plan {
         /// Configuration file (TOML).
@@ -81,6 +87,50 @@ enum Command {
         /// Machine-readable output.
         #[arg(long)]
         json: bool,
+    },
+}
+
+#[derive(Subcommand)]
+enum StateCommand {
+    /// Print what the state directory holds: format, pinned config fingerprint,
+    /// generation and the ledger of fresh epochs. Reads only; never prints the key.
+    Show {
+        /// State directory.
+        #[arg(long)]
+        state: PathBuf,
+        /// Machine-readable output.
+        #[arg(long)]
+        json: bool,
+    },
+    /// Abandon the current epoch and start a new one under --config (which may change
+    /// bounds, budget or mechanism). The abandoned epoch's charge stays spent, the new
+    /// epoch starts after the last closed window, seq continues, and the lifetime spend
+    /// carries over (exit 3, nothing changed, if the new epoch does not fit in
+    /// lifetime_rho). Stop `scrim run` first. Deletes the previous log of raw lines.
+    NewEpoch {
+        /// The configuration the new epoch runs under (TOML).
+        #[arg(long)]
+        config: PathBuf,
+        /// State directory (default: state.dir of --config).
+        #[arg(long)]
+        state: Option<PathBuf>,
+        /// Output directory holding releases.jsonl (default: output.dir of --config).
+        #[arg(long)]
+        out: Option<PathBuf>,
+        /// The configuration the state runs under now; needed only for state directories
+        /// created by an older scrim, which did not store it.
+        #[arg(long)]
+        previous_config: Option<PathBuf>,
+        /// Why the epoch is cut short; recorded in the state's ledger.
+        #[arg(long)]
+        reason: String,
+        /// Start the new epoch at this RFC 3339 time instead of right after the last closed
+        /// window (never earlier); events before it are counted late.
+        #[arg(long)]
+        start: Option<String>,
+        /// The seed the state was created with (seeded test states only).
+        #[arg(long)]
+        seed: Option<u64>,
     },
 }
 
@@ -167,6 +217,33 @@ fn run(cli: Cli) -> Result<(), AppError> {
             };
             let config = scrim::config::Config::load(&config)?;
             app::run_daemon(config, key)
+        }
+        Command::State {
+            command: StateCommand::Show { state, json },
+        } => app::state_show(&state, json, &mut std::io::stdout().lock()),
+        Command::State {
+            command:
+                StateCommand::NewEpoch {
+                    config,
+                    state,
+                    out,
+                    previous_config,
+                    reason,
+                    start,
+                    seed,
+                },
+        } => {
+            let args = app::NewEpochArgs {
+                config,
+                state,
+                out,
+                previous_config,
+                reason,
+                start,
+                key: key_source(seed),
+            };
+            app::state_new_epoch(&args, &mut std::io::stdout().lock())?;
+            Ok(())
         }
         Command::Plan { config, json } => {
             let config = scrim::config::Config::load(&config)?;

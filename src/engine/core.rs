@@ -43,6 +43,29 @@ pub struct EngineOptions {
     pub danger_keep_truth: bool,
 }
 
+/// Where a new *generation* of a deployment starts: the engine continues the release
+/// sequence, the epoch numbering and the ledger of earlier generations, which ran under
+/// another configuration (see `runtime::state` and `scrim state new-epoch`). The default
+/// value is a deployment's first generation, and [`Engine::with_carry`] with it is
+/// [`Engine::new`].
+#[derive(Clone, Debug, Default, PartialEq)]
+pub struct Carry {
+    /// Start of this generation's first window, if pinned: it is rounded up to a window
+    /// boundary of this configuration, and every event before it is counted late (its
+    /// window belongs to an earlier generation). `None`: the first event sets it.
+    pub start: Option<Millis>,
+    /// Index of this generation's first epoch; every lower index belongs to an earlier
+    /// generation. Epoch indices are part of every noise node's identity, so no node of an
+    /// earlier generation is ever recomputed (or its noise reused) for other data.
+    pub first_epoch: u64,
+    /// `seq` of this generation's first release.
+    pub next_seq: u64,
+    /// zCDP spent by earlier generations ([`Ledger::continued`]).
+    pub spent_rho: f64,
+    /// Epochs charged by earlier generations.
+    pub epochs_charged: u64,
+}
+
 /// Why the engine cannot start.
 #[derive(Debug, thiserror::Error)]
 #[non_exhaustive]
@@ -146,8 +169,11 @@ pub struct Engine {
     window_ms: i64,
     lateness_ms: i64,
     idle_close_ms: i64,
-    /// Absolute window index (time / length) of epoch 0's first leaf.
+    /// Absolute window index (time / length) of this generation's first leaf, that of
+    /// epoch `epoch_base`.
     origin: Option<i64>,
+    /// Index of this generation's first epoch ([`Carry::first_epoch`]).
+    epoch_base: u64,
     /// Next absolute window index to close.
     next_close: i64,
     max_event_time: Option<Millis>,
@@ -167,6 +193,19 @@ pub struct Engine {
 impl Engine {
     /// Builds an engine for `config` with noise derived from `key`.
     pub fn new(config: &Config, key: NoiseKey, opts: EngineOptions) -> Result<Engine, EngineError> {
+        Engine::with_carry(config, key, opts, &Carry::default())
+    }
+
+    /// Builds an engine for a generation of a deployment that continues from `carry`:
+    /// releases start at `carry.next_seq`, epochs at `carry.first_epoch`, the first window
+    /// at `carry.start`, and the ledger charges this configuration's epochs on top of what
+    /// earlier generations spent ([`Ledger::continued`]).
+    pub fn with_carry(
+        config: &Config,
+        key: NoiseKey,
+        opts: EngineOptions,
+        carry: &Carry,
+    ) -> Result<Engine, EngineError> {
         let plan = Plan::new(config)?;
         let schema = Schema {
             time_field: config.input.time_field.clone(),
@@ -215,16 +254,28 @@ impl Engine {
             delta: plan.delta,
             mechanism: plan.mechanism.as_str().to_string(),
         };
+        let window_ms = config.window.length.0;
+        // The first window that starts at or after the pinned start (ceiling division).
+        let origin = carry
+            .start
+            .map(|s| s.0.div_euclid(window_ms) + i64::from(s.0.rem_euclid(window_ms) != 0));
         Ok(Engine {
-            ledger: Ledger::new(plan.rho_per_epoch, lifetime),
+            ledger: Ledger::continued(
+                plan.rho_per_epoch,
+                lifetime,
+                carry.spent_rho,
+                carry.epochs_charged,
+                carry.first_epoch,
+            ),
             parser: Arc::new(parser),
             key,
             opts,
-            window_ms: config.window.length.0,
+            window_ms,
             lateness_ms: config.window.allowed_lateness.0,
             idle_close_ms: config.window.idle_close.0,
-            origin: None,
-            next_close: 0,
+            origin,
+            epoch_base: carry.first_epoch,
+            next_close: origin.unwrap_or(0),
             max_event_time: None,
             open: BTreeMap::new(),
             bounder,
@@ -233,7 +284,7 @@ impl Engine {
             halted: None,
             counters: Counters::default(),
             outbox: VecDeque::new(),
-            next_seq: 0,
+            next_seq: carry.next_seq,
             guarantee,
             plan,
         })
@@ -279,7 +330,7 @@ impl Engine {
         let origin = self.origin?;
         let rel = (self.next_close - origin).max(0) as u64;
         let t = u64::from(self.plan.epoch_windows);
-        Some((rel / t, (rel % t) as u32))
+        Some((self.epoch_base + rel / t, (rel % t) as u32))
     }
 
     /// End of the last closed window, if any.
@@ -441,7 +492,7 @@ impl Engine {
         let origin = self.origin.unwrap_or(w);
         let t = u64::from(self.plan.epoch_windows);
         let rel = (w - origin) as u64;
-        let epoch = rel / t;
+        let epoch = self.epoch_base + rel / t;
         let leaf = (rel % t) as u32;
 
         let mut agg = self
@@ -555,7 +606,8 @@ impl Engine {
         }
         // 2. Estimates for every scope, as records.
         let origin = self.origin.unwrap_or(w);
-        let epoch_start = origin + (epoch * u64::from(self.plan.epoch_windows)) as i64;
+        let epoch_start =
+            origin + ((epoch - self.epoch_base) * u64::from(self.plan.epoch_windows)) as i64;
         for (si, s) in self.plan.stats.iter().enumerate() {
             // A scope's window bounds are the same for every group: format them once per
             // close (per record they were a third of closing 100,000 groups, issue 9).
@@ -1202,6 +1254,84 @@ target_bound = 30.0
             }
         }
         total
+    }
+
+    /// A generation continued with [`Engine::with_carry`]: events before the pinned start
+    /// are late, epochs and seq continue, the ledger adds the earlier spend, and a carry
+    /// that leaves less than one epoch of lifetime budget releases nothing (fails closed).
+    #[test]
+    fn a_carried_generation_continues_seq_epochs_and_ledger() {
+        let cfg = config("tree");
+        let t0: i64 = 1_772_409_600_000; // 2026-03-02T00:00:00Z, a window boundary
+        let hour = 3_600_000;
+        let lines: Vec<String> = (0..10)
+            .map(|h| {
+                format!(
+                    r#"{{"ts":{},"card":"u{h}","zone":"a","v":1,"w":1,"y":1}}"#,
+                    t0 + h * hour + 60_000
+                )
+            })
+            .collect();
+        let carry = Carry {
+            // One millisecond past 05:00: the first window is 06:00–07:00.
+            start: Some(Millis(t0 + 5 * hour + 1)),
+            first_epoch: 3,
+            next_seq: 1000,
+            spent_rho: 2.5,
+            epochs_charged: 3,
+        };
+        let opts = EngineOptions {
+            seeded: true,
+            danger_keep_truth: false,
+        };
+        let mut e =
+            Engine::with_carry(&cfg, NoiseKey::from_seed(1), opts.clone(), &carry).expect("engine");
+        for l in &lines {
+            e.handle_line(l.as_bytes());
+        }
+        e.finish();
+        let out: Vec<Release> = std::iter::from_fn(|| e.poll_release()).collect();
+        assert_eq!(
+            e.counters().late,
+            6,
+            "events of 00:00..05:59 are before the start"
+        );
+        assert_eq!(e.counters().accepted, 4);
+        assert!(!out.is_empty());
+        for (i, r) in out.iter().enumerate() {
+            assert_eq!(r.seq, 1000 + i as u64, "seq continues densely");
+            assert_eq!(r.epoch, 3, "epochs continue from the carry");
+        }
+        let first_window = out
+            .iter()
+            .find(|r| r.scope == "window")
+            .expect("window scope");
+        assert_eq!(first_window.leaf, 0);
+        assert_eq!(
+            first_window.window_start,
+            Millis(t0 + 6 * hour).to_rfc3339()
+        );
+        // 2.5 before + 1.0 for epoch 3 (additive zCDP composition, Bun & Steinke 2016).
+        assert_eq!(e.ledger().spent(), 3.5);
+        assert_eq!(e.ledger().epochs_charged(), 4);
+        assert_eq!(e.epoch_position(), Some((3, 4)));
+
+        // 3.5 + 1.0 > 4.0: the generation cannot pay for its first epoch.
+        let broke = Carry {
+            spent_rho: 3.5,
+            ..carry
+        };
+        let mut e = Engine::with_carry(&cfg, NoiseKey::from_seed(1), opts, &broke).expect("engine");
+        for l in &lines {
+            e.handle_line(l.as_bytes());
+        }
+        e.finish();
+        assert!(e.poll_release().is_none());
+        assert!(matches!(
+            e.halted(),
+            Some(BudgetError::Exhausted { epoch: 3, .. })
+        ));
+        assert_eq!(e.ledger().spent(), 3.5);
     }
 
     #[test]

@@ -11,6 +11,13 @@
 //!
 //! A [`EpochCharge`] can only be created by [`Ledger::charge_epoch`]; releases are built
 //! from it, so no release can exist for an epoch that was not paid for.
+//!
+//! **Generations.** A deployment may change its configuration only by starting a fresh
+//! epoch deliberately (`scrim state new-epoch`): the ledger of the new generation is built
+//! with [`Ledger::continued`] from what the earlier generations spent, and charges its own
+//! epochs (at the new `rho_per_epoch`) on top. Unit level: the spends add (sequential
+//! composition again). Event level: every generation's epochs hold disjoint windows, hence
+//! disjoint events, so the total is the largest single epoch charge (parallel composition).
 
 /// Proof that an epoch's budget was charged. Not constructible outside this module.
 #[derive(Clone, Debug, PartialEq)]
@@ -64,8 +71,13 @@ pub enum BudgetError {
 pub struct Ledger {
     rho_per_epoch: f64,
     lifetime_rho: Option<f64>,
+    /// Epochs charged by this ledger (this generation), each at `rho_per_epoch`.
     epochs_charged: u64,
     last_epoch: Option<u64>,
+    /// zCDP spent by earlier generations (see [`Ledger::continued`]).
+    spent_before: f64,
+    /// Epochs charged by earlier generations.
+    epochs_before: u64,
 }
 
 impl Ledger {
@@ -77,6 +89,32 @@ impl Ledger {
             lifetime_rho,
             epochs_charged: 0,
             last_epoch: None,
+            spent_before: 0.0,
+            epochs_before: 0,
+        }
+    }
+
+    /// A ledger for a new generation of a deployment: earlier generations spent
+    /// `spent_before` zCDP over `epochs_before` epochs, and every epoch index below
+    /// `first_epoch` belongs to them (so it can never be charged, or noised, again).
+    ///
+    /// The lifetime check of [`Ledger::charge_epoch`] becomes
+    /// `spent_before + (n + 1)·ρ ≤ lifetime_rho` for this generation's `n`-th epoch:
+    /// zCDP composes additively (Bun & Steinke 2016, Lemma 2.3), whatever ρ each epoch had.
+    pub fn continued(
+        rho_per_epoch: f64,
+        lifetime_rho: Option<f64>,
+        spent_before: f64,
+        epochs_before: u64,
+        first_epoch: u64,
+    ) -> Ledger {
+        Ledger {
+            rho_per_epoch,
+            lifetime_rho,
+            epochs_charged: 0,
+            last_epoch: first_epoch.checked_sub(1),
+            spent_before,
+            epochs_before,
         }
     }
 
@@ -92,6 +130,8 @@ impl Ledger {
             lifetime_rho,
             epochs_charged,
             last_epoch,
+            spent_before: 0.0,
+            epochs_before: 0,
         }
     }
 
@@ -106,7 +146,7 @@ impl Ledger {
             });
         }
         if let Some(lifetime) = self.lifetime_rho {
-            let after = (self.epochs_charged + 1) as f64 * self.rho_per_epoch;
+            let after = self.spent_before + (self.epochs_charged + 1) as f64 * self.rho_per_epoch;
             // Relative slack 1e-12 so that e.g. 8 × 0.5 ≤ 4.0 is not refused by binary rounding.
             if after > lifetime * (1.0 + 1e-12) {
                 return Err(BudgetError::Exhausted {
@@ -125,14 +165,34 @@ impl Ledger {
         })
     }
 
-    /// zCDP spent over the lifetime (unit level: epochs × ρ; event level: ρ of one epoch
-    /// once any epoch ran, by parallel composition).
+    /// zCDP spent over the lifetime, earlier generations included (unit level: their spend
+    /// plus epochs × ρ; event level: the largest one-epoch charge, by parallel composition).
     pub fn spent(&self) -> f64 {
         match self.lifetime_rho {
-            Some(_) => self.epochs_charged as f64 * self.rho_per_epoch,
-            None if self.epochs_charged > 0 => self.rho_per_epoch,
-            None => 0.0,
+            Some(_) => self.spent_before + self.epochs_charged as f64 * self.rho_per_epoch,
+            None if self.epochs_charged > 0 => self.spent_before.max(self.rho_per_epoch),
+            None => self.spent_before,
         }
+    }
+
+    /// How many more epochs the lifetime budget can pay for (None at event level: no cap).
+    /// Uses exactly the test of [`Ledger::charge_epoch`].
+    pub fn epochs_affordable(&self) -> Option<u64> {
+        let lifetime = self.lifetime_rho?;
+        let fits = |k: u64| {
+            self.spent_before + self.epochs_charged.saturating_add(k) as f64 * self.rho_per_epoch
+                <= lifetime * (1.0 + 1e-12)
+        };
+        let left = (lifetime - self.spent()).max(0.0) / self.rho_per_epoch;
+        // `left` is within rounding of the answer; settle it with the exact test.
+        let mut k = (left.floor() as u64).saturating_sub(1);
+        while k < u64::MAX && fits(k + 1) {
+            k += 1;
+        }
+        while k > 0 && !fits(k) {
+            k -= 1;
+        }
+        Some(k)
     }
 
     /// Lifetime zCDP left (None at event level: no cap).
@@ -140,8 +200,13 @@ impl Ledger {
         self.lifetime_rho.map(|l| (l - self.spent()).max(0.0))
     }
 
-    /// Epochs charged so far.
+    /// Epochs charged so far, earlier generations included.
     pub fn epochs_charged(&self) -> u64 {
+        self.epochs_before + self.epochs_charged
+    }
+
+    /// Epochs charged by this generation (at this ledger's `rho_per_epoch`).
+    pub fn epochs_charged_here(&self) -> u64 {
         self.epochs_charged
     }
 
@@ -188,6 +253,60 @@ mod tests {
         }
         assert_eq!(l.spent(), 0.5);
         assert_eq!(l.remaining(), None);
+    }
+
+    #[test]
+    fn a_continued_ledger_adds_earlier_spend_and_never_reuses_an_epoch() {
+        // Earlier generation: 3 epochs at 0.5 (1.5 of 4.0). New generation at 1.0 per epoch:
+        // 1.5 + 2 × 1.0 = 3.5 ≤ 4.0 but 1.5 + 3 × 1.0 = 4.5 > 4.0, so exactly 2 more epochs
+        // (additive composition, Bun & Steinke 2016).
+        let mut l = Ledger::continued(1.0, Some(4.0), 1.5, 3, 7);
+        assert_eq!(l.spent(), 1.5);
+        assert_eq!(l.epochs_charged(), 3);
+        assert_eq!(l.epochs_affordable(), Some(2));
+        assert!(matches!(
+            l.charge_epoch(6),
+            Err(BudgetError::OutOfOrder { .. })
+        ));
+        assert_eq!(l.charge_epoch(7).unwrap().rho(), 1.0);
+        assert_eq!(l.charge_epoch(8).unwrap().epoch(), 8);
+        assert_eq!(l.spent(), 3.5);
+        assert_eq!(l.epochs_charged(), 5);
+        assert_eq!(l.epochs_charged_here(), 2);
+        assert_eq!(l.epochs_affordable(), Some(0));
+        assert!(matches!(
+            l.charge_epoch(9),
+            Err(BudgetError::Exhausted { epoch: 9, .. })
+        ));
+        // Event level: generations hold disjoint windows, so the total is the largest
+        // single charge (parallel composition, McSherry 2009).
+        let mut e = Ledger::continued(0.25, None, 0.5, 10, 10);
+        assert_eq!(e.spent(), 0.5);
+        e.charge_epoch(10).unwrap();
+        assert_eq!(e.spent(), 0.5);
+        let mut e = Ledger::continued(2.0, None, 0.5, 10, 10);
+        e.charge_epoch(10).unwrap();
+        assert_eq!(e.spent(), 2.0);
+        assert_eq!(e.epochs_affordable(), None);
+    }
+
+    #[test]
+    fn affordable_epochs_match_repeated_charges() {
+        // Brute force: count the charges that succeed, for awkward binary fractions.
+        for (rho, life, before) in [
+            (0.1, 1.0, 0.3),
+            (0.5, 4.0, 0.0),
+            (0.3, 0.9, 0.0),
+            (0.7, 3.0, 0.2),
+        ] {
+            let mut l = Ledger::continued(rho, Some(life), before, 1, 1);
+            let predicted = l.epochs_affordable().unwrap();
+            let mut n = 0;
+            while l.charge_epoch(1 + n).is_ok() {
+                n += 1;
+            }
+            assert_eq!(predicted, n, "rho {rho} lifetime {life} before {before}");
+        }
     }
 
     #[test]

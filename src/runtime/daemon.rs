@@ -12,14 +12,13 @@ use tokio::sync::{mpsc, watch};
 
 use crate::app::AppError;
 use crate::config::{Config, SourceConfig};
-use crate::engine::event::RejectReason;
 use crate::engine::plan::PrivacyLevel;
 use crate::engine::release::Release;
 use crate::engine::{Engine, EngineOptions};
 use crate::output::{JsonlSink, ReleaseSink};
 use crate::runtime::metrics::Metrics;
 use crate::runtime::sources::{self, Batch};
-use crate::runtime::state::{StateDir, WalRecord};
+use crate::runtime::state::{self, StateDir};
 
 /// Releases kept in memory for `/v1/releases` (older ones stay in releases.jsonl).
 pub const RELEASES_IN_MEMORY: usize = 200_000;
@@ -163,7 +162,8 @@ fn budget_view(engine: &Engine) -> BudgetView {
         lifetime_spent_rho: l.spent(),
         lifetime_remaining_rho: l.remaining(),
         epochs_charged: l.epochs_charged(),
-        epochs_allowed: plan.epochs_allowed(),
+        // Earlier state generations (`scrim state new-epoch`) may have spent at another rate.
+        epochs_allowed: l.epochs_affordable().map(|k| l.epochs_charged() + k),
         epoch: pos.map(|p| p.0),
         epoch_windows: plan.epoch_windows,
         epoch_windows_closed: pos.map_or(0, |p| p.1),
@@ -175,9 +175,10 @@ fn budget_view(engine: &Engine) -> BudgetView {
                 name: s.name.clone(),
                 kind: s.kind.to_string(),
                 rho_per_epoch: s.rho(),
+                // Under the current configuration (its state generation).
                 spent_rho: match l.lifetime_rho() {
-                    Some(_) => s.rho() * l.epochs_charged() as f64,
-                    None if l.epochs_charged() > 0 => s.rho(),
+                    Some(_) => s.rho() * l.epochs_charged_here() as f64,
+                    None if l.epochs_charged_here() > 0 => s.rho(),
                     None => 0.0,
                 },
             })
@@ -225,21 +226,20 @@ pub fn read_operator_token(path: &std::path::Path) -> Result<String, AppError> {
 
 /// Seconds until the lifetime budget runs out at one window of event time per window length.
 ///
-/// `charged` epochs are paid for (the current one is charged when its first window closes).
-/// With `closed` > 0 windows of the current epoch closed, the current epoch is charged and
-/// has T − closed windows left, and `allowed − charged` whole epochs follow. With
-/// `closed` = 0 the next epoch is not charged yet, so `allowed − charged` whole epochs remain
-/// and nothing of a current one. `None` allowed (event level) never runs out.
+/// `affordable` is how many more epochs the ledger can pay for after those already charged
+/// (earlier generations included; `None` at event level, which never runs out). The current
+/// epoch is charged when its first window closes: with `closed` > 0 windows closed it is paid
+/// for and has T − closed windows left; with `closed` = 0 it is not charged yet and is one of
+/// the `affordable` ones.
 fn exhaustion_eta_seconds(
-    allowed: Option<u64>,
-    charged: u64,
+    affordable: Option<u64>,
     epoch_windows: u32,
     closed: u32,
     window_ms: i64,
 ) -> f64 {
-    match allowed {
+    match affordable {
         Some(n) => {
-            let whole = n.saturating_sub(charged) as f64 * f64::from(epoch_windows);
+            let whole = n as f64 * f64::from(epoch_windows);
             let current = if closed > 0 {
                 f64::from(epoch_windows - closed)
             } else {
@@ -264,8 +264,7 @@ fn update_gauges(m: &mut Metrics, engine: &Engine, window_ms: i64) {
     m.epoch_windows_remaining
         .set(i64::from(plan.epoch_windows - closed));
     m.budget_exhaustion_eta.set(exhaustion_eta_seconds(
-        plan.epochs_allowed(),
-        l.epochs_charged(),
+        l.epochs_affordable(),
         plan.epoch_windows,
         closed,
         window_ms,
@@ -285,69 +284,52 @@ pub async fn run(config: Config, seed: Option<u64>) -> Result<(), AppError> {
             source,
         }
     };
-    let (mut state, key, records) = StateDir::open(&config.state.dir, &config.fingerprint(), seed)
+    let (mut state, key, records) = StateDir::open(&config.state.dir, &config, seed)
         .map_err(|e| AppError::State(e.to_string()))?;
     let seeded = seed.is_some();
-    let mut engine = Engine::new(
+    let carry = state.carry().clone();
+    let mut engine = Engine::with_carry(
         &config,
         key,
         EngineOptions {
             seeded,
             danger_keep_truth: false,
         },
+        &carry,
     )?;
     // Rebuild the engine from the log: same inputs, same key, same noise, same seq.
-    let mut file_offsets = vec![0u64; config.sources.len()];
-    for r in &records {
-        match r {
-            WalRecord::Line(l) => engine.handle_line(l),
-            WalRecord::Tick(t) => engine.handle_tick(*t),
-            WalRecord::Reject(label) => {
-                if let Some(reason) = RejectReason::ALL.iter().find(|x| x.label() == label) {
-                    engine.count_rejection(*reason);
-                }
-            }
-            WalRecord::Offset { source, offset } => {
-                if let Some(o) = file_offsets.get_mut(*source as usize) {
-                    *o = *offset;
-                }
-            }
-            WalRecord::Finish => {}
-            WalRecord::Batch { lines, offset } => {
-                for l in lines {
-                    engine.handle_line(l);
-                }
-                if let Some((src, off)) = offset
-                    && let Some(o) = file_offsets.get_mut(*src as usize)
-                {
-                    *o = *off;
-                }
-            }
-        }
-    }
+    let file_offsets = state::replay_log(&mut engine, &records, config.sources.len()).file_offsets;
     let rel_path = config.output.dir.join("releases.jsonl");
     std::fs::create_dir_all(&config.output.dir)
         .map_err(io(format!("creating {}", config.output.dir.display())))?;
-    let published = crate::runtime::state::published_seq(&rel_path)
-        .map_err(|e| AppError::State(e.to_string()))?;
+    let published = state::published_seq(&rel_path).map_err(|e| AppError::State(e.to_string()))?;
     let mut sink = JsonlSink::open(&config.output.dir)
         .map_err(io(format!("opening {}", config.output.dir.display())))?;
     let mut restored = Vec::new();
     while let Some(r) = engine.poll_release() {
-        if published.is_none_or(|p| r.seq > p) {
-            sink.publish(&r)
-                .map_err(io("writing releases".to_string()))?;
-        }
         restored.push(r);
     }
-    if let Some(p) = published
-        && restored.last().is_none_or(|r| r.seq < p)
-    {
-        return Err(AppError::State(format!(
-            "{} holds releases up to seq {p} but the state in {} reproduces fewer: restore both from the same backup",
-            rel_path.display(),
-            config.state.dir.display()
-        )));
+    state::check_output(
+        published,
+        restored.last().map(|r| r.seq),
+        &carry,
+        &rel_path,
+        &config.state.dir,
+    )
+    .map_err(|e| AppError::State(e.to_string()))?;
+    if let Some((first, last)) = state::missing_from_output(published, &carry) {
+        tracing::warn!(
+            first,
+            last,
+            "releases.jsonl lacks records an earlier state generation published; they cannot be regenerated (restore the newest releases.jsonl if one exists)"
+        );
+    }
+    // Releases that were durable in the log but not yet in the file are written once.
+    for r in &restored {
+        if published.is_none_or(|p| r.seq > p) {
+            sink.publish(r)
+                .map_err(io("writing releases".to_string()))?;
+        }
     }
     sink.flush().map_err(io("writing releases".to_string()))?;
     if !records.is_empty() {
@@ -666,14 +648,14 @@ mod tests {
                         let charged = if closed > 0 { e + 1 } else { e };
                         let left = n * u64::from(t) - (e * u64::from(t) + u64::from(closed));
                         let want = left as f64 * 3600.0;
-                        let got = exhaustion_eta_seconds(Some(n), charged, t, closed, window_ms);
+                        let got = exhaustion_eta_seconds(Some(n - charged), t, closed, window_ms);
                         assert_eq!(got, want, "n={n} T={t} e={e} closed={closed}");
                     }
                 }
                 // All n epochs spent: nothing left.
-                assert_eq!(exhaustion_eta_seconds(Some(n), n, t, 0, window_ms), 0.0);
+                assert_eq!(exhaustion_eta_seconds(Some(0), t, 0, window_ms), 0.0);
             }
         }
-        assert!(exhaustion_eta_seconds(None, 3, 24, 5, window_ms).is_infinite());
+        assert!(exhaustion_eta_seconds(None, 24, 5, window_ms).is_infinite());
     }
 }
