@@ -994,7 +994,7 @@ fn drivers_text(s: &StatView) -> String {
     let mut out = String::from("  error drivers (std_error is proportional to each):\n");
     for d in &s.error_drivers {
         let what = if d.bound.starts_with("privacy.") {
-            format!("noise ×{}", sig(d.factor))
+            format!("noise ×{} vs a cap of 1", sig(d.factor))
         } else {
             format!("{} per event", sig(d.factor))
         };
