@@ -8,7 +8,8 @@
 //! variance factor for the scope's leaf range after `leaf + 1` leaves; `plan` evaluates the
 //! same function on the same numbers (src/engine/mechanism/mod.rs, `estimate_variance`).
 //! Only the JSON round trip of the two doubles separates them, and serde_json's
-//! float_roundtrip makes that exact, so the tolerance (relative 1e-9) only absorbs nothing.
+//! float_roundtrip makes that exact: the relative tolerance of 1e-9 has nothing to absorb
+//! (the values come out bit-identical), and any modelling slip would exceed it.
 //!
 //! Means are the exception: the record's std_error is a delta-method ratio that uses the
 //! noisy count, which no plan can know. What is predictable is checked instead (see
