@@ -7,12 +7,20 @@ use std::path::{Path, PathBuf};
 
 use crate::config::{Config, ConfigError, Mechanism};
 use crate::demo::{DemoFeed, FeedSpec};
-use crate::engine::mechanism::{LeafRange, MechanismKind};
+use crate::engine::mechanism::MechanismKind;
 use crate::engine::noise::NoiseKey;
-use crate::engine::plan::{Plan, PlanError, PrivacyLevel, Scope};
+use crate::engine::plan::{PlanError, Scope};
 use crate::engine::release::Release;
 use crate::engine::{Engine, EngineError, EngineOptions};
 use crate::output::{JsonlSink, ReleaseSink};
+
+mod planner;
+mod progress;
+
+pub use planner::{
+    PlanArgs, PlanView, WHAT_IF_KEYS, WhatIfChange, Z_95, apply_what_ifs, plan_command, plan_report,
+};
+pub use progress::ReplayProgress;
 
 /// The demo configuration, compiled in so `scrim demo` works from any directory.
 pub const DEMO_CONFIG: &str = include_str!("../config/demo.toml");
@@ -139,8 +147,23 @@ pub fn pump<R: Read>(
     sink: &mut dyn ReleaseSink,
     threads: usize,
 ) -> std::io::Result<(u64, u64)> {
+    pump_with_progress(engine, input, sink, threads, None)
+}
+
+/// [`pump`] that also advances a progress bar (see [`ReplayProgress`] for its cost).
+pub fn pump_with_progress<R: Read>(
+    engine: &mut Engine,
+    input: R,
+    sink: &mut dyn ReleaseSink,
+    threads: usize,
+    mut progress: Option<&mut ReplayProgress>,
+) -> std::io::Result<(u64, u64)> {
+    let input = match progress.as_deref() {
+        Some(p) => p.reader(input),
+        None => progress::CountingReader::plain(input),
+    };
     if threads > 1 {
-        return pump_parallel(engine, input, sink, threads);
+        return pump_parallel(engine, input, sink, threads, progress);
     }
     let mut reader = BufReader::with_capacity(1 << 20, input);
     let mut line = Vec::with_capacity(4096);
@@ -163,6 +186,11 @@ pub fn pump<R: Read>(
             sink.publish(&r)?;
             n_releases += 1;
         }
+        if let Some(p) = progress.as_deref_mut()
+            && p.line_done()
+        {
+            p.draw(engine.counters().accepted);
+        }
     }
     engine.finish();
     while let Some(r) = engine.poll_release() {
@@ -179,6 +207,7 @@ fn pump_parallel<R: Read>(
     input: R,
     sink: &mut dyn ReleaseSink,
     threads: usize,
+    mut progress: Option<&mut ReplayProgress>,
 ) -> std::io::Result<(u64, u64)> {
     let decoder = engine.line_decoder();
     let mut n_releases = 0u64;
@@ -188,6 +217,11 @@ fn pump_parallel<R: Read>(
             while let Some(r) = engine.poll_release() {
                 sink.publish(&r)?;
                 n_releases += 1;
+            }
+            if let Some(p) = progress.as_deref_mut()
+                && p.line_done()
+            {
+                p.draw(engine.counters().accepted);
             }
             Ok(())
         })?;
@@ -228,13 +262,37 @@ pub fn replay(
         )?;
         let mut sink =
             JsonlSink::create(&out_dir).map_err(io(format!("creating {}", out_dir.display())))?;
-        let (lines, releases) = if input == "-" {
-            pump(&mut engine, std::io::stdin().lock(), &mut sink, threads)
+        // A progress bar on a terminal's stderr: with an ETA when the input is a regular
+        // file of known size, without one for stdin or a pipe.
+        let pumped = if input == "-" {
+            let mut bar = ReplayProgress::on_terminal(None);
+            let r = pump_with_progress(
+                &mut engine,
+                std::io::stdin().lock(),
+                &mut sink,
+                threads,
+                bar.as_mut(),
+            );
+            if let Some(b) = &bar {
+                b.finish();
+            }
+            r
         } else {
             let f = std::fs::File::open(input).map_err(io(format!("opening input {input}")))?;
-            pump(&mut engine, f, &mut sink, threads)
-        }
-        .map_err(io(format!("replaying into {}", sink.path().display())))?;
+            let size = f
+                .metadata()
+                .ok()
+                .filter(std::fs::Metadata::is_file)
+                .map(|m| m.len());
+            let mut bar = ReplayProgress::on_terminal(size);
+            let r = pump_with_progress(&mut engine, f, &mut sink, threads, bar.as_mut());
+            if let Some(b) = &bar {
+                b.finish();
+            }
+            r
+        };
+        let (lines, releases) =
+            pumped.map_err(io(format!("replaying into {}", sink.path().display())))?;
         return Ok(ReplaySummary {
             lines,
             counters: engine.counters().clone(),
@@ -692,200 +750,6 @@ pub fn state_show(dir: &Path, json: bool, w: &mut dyn Write) -> Result<(), AppEr
         Ok(())
     };
     print().map_err(io("printing"))
-}
-
-/// Loads a config and plans it for `mechanism` (or the configured one).
-fn plan_for(config: &Config, mechanism: Option<Mechanism>) -> Result<Plan, AppError> {
-    let mut c = config.clone();
-    if let Some(m) = mechanism {
-        c.privacy.mechanism = m;
-    }
-    Ok(Plan::new(&c)?)
-}
-
-/// Per-scope standard errors of one statistic's first component at the end of an epoch
-/// (value units). For means the sum and count components are reported separately.
-fn scope_errors(plan: &Plan, stat_idx: usize) -> Vec<(String, Vec<f64>)> {
-    let s = &plan.stats[stat_idx];
-    let t = plan.epoch_windows;
-    s.scopes
-        .iter()
-        .map(|scope| {
-            let range: LeafRange = scope.range(t - 1);
-            let errs = s
-                .components
-                .iter()
-                .map(|c| c.std_error(plan.mechanism, t, t, range))
-                .collect();
-            (scope.label(), errs)
-        })
-        .collect()
-}
-
-/// `scrim plan`: the text or JSON report. Returns the report and whether the plan fits.
-pub fn plan_report(config: &Config, json: bool) -> Result<(String, bool), AppError> {
-    let plan = plan_for(config, None)?;
-    let fits = plan.epochs_allowed().is_none_or(|n| n >= 1);
-    let kinds = [
-        Mechanism::Tree,
-        Mechanism::SqrtFactorization,
-        Mechanism::Independent,
-    ];
-    let alt: Vec<Plan> = kinds
-        .iter()
-        .map(|m| plan_for(config, Some(*m)))
-        .collect::<Result<_, _>>()?;
-    if json {
-        let stats: Vec<serde_json::Value> = plan
-            .stats
-            .iter()
-            .enumerate()
-            .map(|(i, s)| {
-                let comps: Vec<serde_json::Value> = s
-                    .components
-                    .iter()
-                    .map(|c| {
-                        serde_json::json!({
-                            "grid": c.quantum(),
-                            "per_event_l2": c.event_sens_sq.sqrt() * c.quantum(),
-                            "sensitivity_l2": c.sensitivity_sq.sqrt() * c.quantum(),
-                            "sigma": (c.sigma2 as f64).sqrt() * c.quantum(),
-                            "rho": c.rho,
-                        })
-                    })
-                    .collect();
-                let by_mech: serde_json::Map<String, serde_json::Value> = alt
-                    .iter()
-                    .map(|p| {
-                        let errs: serde_json::Map<String, serde_json::Value> = scope_errors(p, i)
-                            .into_iter()
-                            .map(|(label, e)| (label, serde_json::json!(e)))
-                            .collect();
-                        (
-                            p.mechanism.as_str().to_string(),
-                            serde_json::Value::Object(errs),
-                        )
-                    })
-                    .collect();
-                serde_json::json!({
-                    "name": s.name, "kind": s.kind, "groups": s.groups.len(),
-                    "rho": s.rho(), "components": comps,
-                    "std_error_end_of_epoch": by_mech,
-                })
-            })
-            .collect();
-        let (unit, lifetime) = match &plan.level {
-            PrivacyLevel::Event => (serde_json::Value::Null, serde_json::Value::Null),
-            PrivacyLevel::Unit {
-                field,
-                lifetime_rho,
-                ..
-            } => (serde_json::json!(field), serde_json::json!(lifetime_rho)),
-        };
-        let v = serde_json::json!({
-            "mechanism": plan.mechanism.as_str(),
-            "epoch_windows": plan.epoch_windows,
-            "unit": unit,
-            "rho_per_epoch": plan.rho_per_epoch,
-            "rho_spent_per_epoch": plan.rho_spent_per_epoch(),
-            "lifetime_rho": lifetime,
-            "epochs_allowed": plan.epochs_allowed(),
-            "epsilon_per_epoch": plan.epsilon_per_epoch(),
-            "delta": plan.delta,
-            "fits": fits,
-            "stats": stats,
-        });
-        return Ok((
-            serde_json::to_string_pretty(&v).unwrap_or_default() + "\n",
-            fits,
-        ));
-    }
-    let mut out = String::new();
-    let level = match &plan.level {
-        PrivacyLevel::Event => "event level (neighbours differ in one event)".to_string(),
-        PrivacyLevel::Unit {
-            field,
-            max_events_per_window,
-            max_windows_per_epoch,
-            ..
-        } => format!(
-            "unit level on `{field}` (≤ {max_events_per_window} events per window, ≤ {max_windows_per_epoch} windows per epoch)"
-        ),
-    };
-    out += &format!("privacy        {level}\n");
-    out += &format!(
-        "budget         rho {} per epoch of {} windows; (epsilon {:.4}, delta {:e}) per epoch\n",
-        plan.rho_per_epoch,
-        plan.epoch_windows,
-        plan.epsilon_per_epoch(),
-        plan.delta
-    );
-    match (&plan.level, plan.epochs_allowed()) {
-        (PrivacyLevel::Unit { lifetime_rho, .. }, Some(n)) => {
-            out += &format!(
-                "lifetime       rho {lifetime_rho} covers {n} epoch(s); releases stop after that\n"
-            )
-        }
-        _ => out += "lifetime       no cap: epochs hold disjoint events (parallel composition)\n",
-    }
-    out += &format!("mechanism      {}\n\n", plan.mechanism.as_str());
-    for (i, s) in plan.stats.iter().enumerate() {
-        out += &format!(
-            "{} ({}, {} group(s), rho {:.6})\n",
-            s.name,
-            s.kind,
-            s.groups.len(),
-            s.rho()
-        );
-        for c in &s.components {
-            out += &format!(
-                "  {:<12} per-event L2 {:.6e}  epoch sensitivity L2 {:.6e}  node sigma {:.6e}\n",
-                component_label(c),
-                c.event_sens_sq.sqrt() * c.quantum(),
-                c.sensitivity_sq.sqrt() * c.quantum(),
-                (c.sigma2 as f64).sqrt() * c.quantum()
-            );
-        }
-        out += "  std_error at the end of an epoch:\n";
-        out += &format!("    {:<16}", "scope");
-        for p in &alt {
-            out += &format!("{:>22}", p.mechanism.as_str());
-        }
-        out += "\n";
-        let per_mech: Vec<Vec<(String, Vec<f64>)>> =
-            alt.iter().map(|p| scope_errors(p, i)).collect();
-        for (row, (label, _)) in per_mech[0].iter().enumerate() {
-            out += &format!("    {label:<16}");
-            let best = (0..alt.len())
-                .min_by(|a, b| per_mech[*a][row].1[0].total_cmp(&per_mech[*b][row].1[0]))
-                .unwrap_or(0);
-            for (mi, m) in per_mech.iter().enumerate() {
-                let e = &m[row].1;
-                let cell = e
-                    .iter()
-                    .map(|x| format!("{x:.4}"))
-                    .collect::<Vec<_>>()
-                    .join("/");
-                let mark = if mi == best { "*" } else { " " };
-                out += &format!("{:>21}{mark}", cell);
-            }
-            out += "\n";
-        }
-        out += "\n";
-    }
-    out += "* lowest std_error for that scope. Means list sum/count components; linear lists\n";
-    out += "  the per-coordinate std_error of its sufficient statistics.\n";
-    Ok((out, fits))
-}
-
-fn component_label(c: &crate::engine::plan::ComponentPlan) -> &'static str {
-    use crate::engine::plan::ComponentRole as R;
-    match c.role {
-        R::Count => "count",
-        R::Sum { .. } => "sum",
-        R::CentredSum { .. } => "centred sum",
-        R::Moments { .. } => "moments",
-    }
 }
 
 /// Options of `scrim demo`.

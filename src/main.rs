@@ -80,13 +80,34 @@ enum Command {
         command: StateCommand,
     },
     /// Show the budget plan and the expected errors before any data.
+    ///
+    /// Per statistic and scope: std_error and 95% half-width, the bounds that drive the
+    /// error; for the deployment: rho and (epsilon, delta), epochs allowed and when the
+    /// lifetime budget runs out. `--what-if` compares against a changed configuration.
     Plan {
         /// Configuration file (TOML).
         #[arg(long)]
         config: PathBuf,
-        /// Machine-readable output.
+        /// Machine-readable output (JSON Schema: ops/plan.schema.json).
         #[arg(long)]
         json: bool,
+        /// Compare with the configuration changed by KEY=VALUE (repeatable). VALUE is a
+        /// literal (`privacy.max_windows_per_epoch=12`, `stats.fare_revenue.range=[0,450]`,
+        /// `window.length=30m`, `mechanism=independent`) or `xF` to scale the configured
+        /// value (`rho_per_epoch=x2`, `stats.fare_revenue.range=x0.5`). Keys:
+        /// privacy.{rho_per_epoch, lifetime_rho, delta, epoch_windows, max_events_per_window,
+        /// max_windows_per_epoch, mechanism} (the `privacy.` prefix may be left out),
+        /// window.length, stats.NAME.weight, stats.NAME.range (sum and mean).
+        #[arg(long = "what-if", value_name = "KEY=VALUE")]
+        what_if: Vec<String>,
+        /// Give std_errors for the record released when this window of the epoch closes
+        /// (0-based, as the records' `leaf`); default: the epoch's last window.
+        #[arg(long, value_name = "LEAF")]
+        leaf: Option<u32>,
+        /// When the deployment starts (RFC 3339), for the date its lifetime budget runs
+        /// out; default: now.
+        #[arg(long, value_name = "TIME", value_parser = parse_start)]
+        start: Option<scrim::engine::time::Millis>,
     },
 }
 
@@ -132,6 +153,12 @@ enum StateCommand {
         #[arg(long)]
         seed: Option<u64>,
     },
+}
+
+/// `--start`: an RFC 3339 time.
+fn parse_start(s: &str) -> Result<scrim::engine::time::Millis, String> {
+    scrim::engine::time::Millis::parse_rfc3339(s)
+        .ok_or_else(|| format!("`{s}` is not an RFC 3339 time, e.g. 2026-03-02T00:00:00Z"))
 }
 
 fn key_source(seed: Option<u64>) -> KeySource {
@@ -245,9 +272,20 @@ fn run(cli: Cli) -> Result<(), AppError> {
             app::state_new_epoch(&args, &mut std::io::stdout().lock())?;
             Ok(())
         }
-        Command::Plan { config, json } => {
-            let config = scrim::config::Config::load(&config)?;
-            let (report, fits) = app::plan_report(&config, json)?;
+        Command::Plan {
+            config,
+            json,
+            what_if,
+            leaf,
+            start,
+        } => {
+            let args = app::PlanArgs {
+                json,
+                what_if,
+                leaf,
+                start,
+            };
+            let (report, fits) = app::plan_command(&config, &args)?;
             print!("{report}");
             if fits {
                 Ok(())

@@ -203,3 +203,48 @@ fn plan_prints_the_budget_and_json_parses() {
     assert!(v["epsilon_per_epoch"].as_f64().unwrap() > 0.0);
     assert_eq!(v["fits"], true);
 }
+
+#[test]
+fn replay_off_a_terminal_writes_only_logs_and_the_summary_to_stderr() {
+    // The progress bar is drawn only when stderr is a terminal; here stderr is a pipe, so
+    // every line must be a JSON log line (tracing's format off a terminal) or the summary,
+    // and no carriage return or escape sequence may appear (what a bar would draw).
+    let dir = tempfile::tempdir().unwrap();
+    std::fs::write(dir.path().join("c.toml"), SMALL_CONFIG).unwrap();
+    std::fs::write(dir.path().join("in.jsonl"), small_feed(3)).unwrap();
+    for threads in ["1", "3"] {
+        for input in ["in.jsonl", "-"] {
+            let mut cmd = Command::new(env!("CARGO_BIN_EXE_scrim"));
+            cmd.args([
+                "replay",
+                "--config",
+                "c.toml",
+                "--out",
+                "o",
+                "--threads",
+                threads,
+                input,
+            ])
+            .current_dir(dir.path())
+            .env_remove("RUST_LOG");
+            if input == "-" {
+                cmd.stdin(std::fs::File::open(dir.path().join("in.jsonl")).unwrap());
+            }
+            let o = cmd.output().expect("the scrim binary runs");
+            assert!(o.status.success(), "{}", String::from_utf8_lossy(&o.stderr));
+            let err = String::from_utf8(o.stderr).expect("stderr is UTF-8");
+            assert!(
+                !err.contains('\r') && !err.contains('\u{1b}'),
+                "control characters on stderr: {err:?}"
+            );
+            for line in err.lines() {
+                assert!(
+                    line.starts_with("scrim replay: ")
+                        || serde_json::from_str::<serde_json::Value>(line).is_ok(),
+                    "threads {threads}, input {input}: unexpected stderr line {line:?}"
+                );
+            }
+            assert!(err.contains("scrim replay: 15 lines"), "{err}");
+        }
+    }
+}

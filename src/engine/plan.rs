@@ -418,6 +418,56 @@ impl Plan {
             }
         }
     }
+
+    /// zCDP of the whole deployment: unit level, the epochs the lifetime budget pays for
+    /// compose sequentially and zCDP adds up, so `epochs_allowed · rho_per_epoch`
+    /// (≤ `lifetime_rho`; additive composition, Bun & Steinke 2016, as the ledger charges);
+    /// event level, epochs hold disjoint events and compose in parallel, so one epoch's
+    /// `rho_per_epoch` covers the whole stream (privacy-math.md §2).
+    pub fn deployment_rho(&self) -> f64 {
+        match self.epochs_allowed() {
+            Some(n) => n as f64 * self.rho_per_epoch,
+            None => self.rho_per_epoch,
+        }
+    }
+
+    /// Predicted standard error of each component of statistic `stat_idx` in the record of
+    /// `scope` released when leaf `leaf` (0-based, as the record's `leaf`) closes: value units,
+    /// and the normalised units of [`MomentUnits`] for the linear kind's moments.
+    ///
+    /// This is the number the engine puts in the record (for counts and sums the record's
+    /// `std_error` itself; for the linear kind `statistics.std_error`): the record is released
+    /// after `leaf + 1` leaves for the range `scope.range(leaf)`, and both sides evaluate
+    /// [`mechanism::estimate_variance`] on the same node variance and grid.
+    ///
+    /// # Panics
+    /// If `stat_idx` is out of range or `leaf >= epoch_windows` (caller bugs: `plan`
+    /// validates `--leaf` first).
+    pub fn scope_std_errors(&self, stat_idx: usize, scope: Scope, leaf: u32) -> Vec<f64> {
+        let range = scope.range(leaf);
+        self.stats[stat_idx]
+            .components
+            .iter()
+            .map(|c| c.std_error(self.mechanism, self.epoch_windows, leaf + 1, range))
+            .collect()
+    }
+}
+
+/// Data-free bound on `std_error × count` of a mean record, from the standard errors of its
+/// centred-sum and count components and the half-width `h = (hi − lo)/2` of its range.
+///
+/// The engine reports the mean's std_error by the first-order delta method for the ratio of
+/// two independent noisy terms (common practice; the formula in `core.rs`):
+/// `se = √(se_S² + r²·se_C²) / C`, where `S` is the noisy centred sum, `C` the noisy count
+/// and `r = S/C` the centred mean. Clamping keeps the centred mean within `[−h, h]`, so
+/// `se·C ≤ √(se_S² + h²·se_C²)`: a scope holding `n` events has a mean std_error of about
+/// this bound divided by `n`, and at most that when its mean sits at an end of the range.
+pub fn mean_std_error_times_count(
+    sum_std_error: f64,
+    count_std_error: f64,
+    half_range: f64,
+) -> f64 {
+    (sum_std_error.powi(2) + (half_range * count_std_error).powi(2)).sqrt()
 }
 
 fn kind_label(k: &StatKind) -> &'static str {
