@@ -23,7 +23,7 @@
 //!
 //! Runtime: the default tests take well under a minute in the test profile. The larger run
 //! is `cargo test --release --test audit -- --ignored audit_large` (about ten minutes on
-//! two cores); it prints the table that docs/hardening.md records.
+//! two cores); it prints the table that README.md ("Hardening figures") records.
 
 use std::collections::BTreeMap;
 
@@ -759,11 +759,11 @@ fn audit_linear() {
     audit_kind("linear", N_SELECT, N_EVAL);
 }
 
-/// Runs per side in the larger audit of docs/hardening.md.
+/// Runs per side in the larger audit (README.md, "Hardening figures").
 const N_SELECT_LARGE: u64 = 10_000;
 const N_EVAL_LARGE: u64 = 100_000;
 
-// The larger audit for docs/hardening.md, one test per kind so that they can share the
+// The larger audit (README.md, "Hardening figures"), one test per kind so that they can share the
 // cores: `cargo test --release --test audit -- --ignored audit_large --nocapture`.
 
 #[test]

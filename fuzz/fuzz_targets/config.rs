@@ -3,7 +3,7 @@
 //! Any text must either load into a `Config` that the planner and the engine accept or
 //! refuse with an error, or be refused with a `ConfigError` whose message is not empty;
 //! nothing may panic.
-//! Run: `cargo fuzz run -s none config fuzz/corpus/config` (docs/hardening.md).
+//! Run: `cargo fuzz run -s none config fuzz/corpus/config` (README, "Hardening figures").
 #![no_main]
 
 use libfuzzer_sys::fuzz_target;

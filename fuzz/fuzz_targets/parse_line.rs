@@ -2,7 +2,7 @@
 //!
 //! Any byte string must be either a valid event or a rejection with a known reason; nothing
 //! may panic, and a rejection must never carry line content (only schema field names).
-//! Run: `cargo fuzz run -s none parse_line fuzz/corpus/parse_line` (docs/hardening.md).
+//! Run: `cargo fuzz run -s none parse_line fuzz/corpus/parse_line` (README, "Hardening figures").
 #![no_main]
 
 use std::sync::OnceLock;
