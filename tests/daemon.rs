@@ -2,24 +2,14 @@
 //! TCP and file sources, cursor pulls, metrics that add up, backpressure, shutdown and
 //! restart from the state directory.
 
-use std::io::{BufRead, BufReader, Read, Write};
+mod common;
+
+use common::{Daemon, get, metric, now_ms, request, start_run, wait_until};
+use std::io::{Read, Write};
 use std::net::TcpStream;
 use std::path::Path;
-use std::process::{Child, Command, Stdio};
+use std::process::Command;
 use std::time::{Duration, Instant};
-
-struct Daemon {
-    child: Child,
-    http: String,
-    tcp: String,
-}
-
-impl Drop for Daemon {
-    fn drop(&mut self) {
-        let _ = self.child.kill();
-        let _ = self.child.wait();
-    }
-}
 
 fn config(dir: &Path, with_file: bool) -> String {
     let file = if with_file {
@@ -71,114 +61,12 @@ dir = "{state}"
 }
 
 fn start(dir: &Path, cfg: &str, env: &[(&str, &str)]) -> Daemon {
-    std::fs::write(dir.join("scrim.toml"), cfg).unwrap();
-    let mut cmd = Command::new(env!("CARGO_BIN_EXE_scrim"));
-    cmd.args(["run", "--config", "scrim.toml"])
-        .current_dir(dir)
-        .stdin(Stdio::null())
-        .stdout(Stdio::null())
-        .stderr(Stdio::piped());
-    for (k, v) in env {
-        cmd.env(k, v);
-    }
-    let mut child = cmd.spawn().expect("scrim runs");
-    let stderr = child.stderr.take().unwrap();
-    let (tx, rx) = std::sync::mpsc::channel();
-    std::thread::spawn(move || {
-        for line in BufReader::new(stderr).lines().map_while(Result::ok) {
-            let _ = tx.send(line);
-        }
-    });
-    let (mut http, mut tcp) = (None, None);
-    let deadline = Instant::now() + Duration::from_secs(30);
-    while (http.is_none() || tcp.is_none()) && Instant::now() < deadline {
-        if let Ok(line) = rx.recv_timeout(Duration::from_millis(200)) {
-            if let Some(a) = line.strip_prefix("scrim: http listening on ") {
-                http = Some(a.trim().to_string());
-            }
-            if let Some(a) = line.strip_prefix("scrim: tcp source 0 listening on ") {
-                tcp = Some(a.trim().to_string());
-            }
-        }
-    }
-    std::thread::spawn(move || while rx.recv().is_ok() {});
-    Daemon {
-        child,
-        http: http.expect("http address printed"),
-        tcp: tcp.expect("tcp address printed"),
-    }
+    start_run(dir, cfg, env)
 }
 
-fn get(addr: &str, path: &str) -> (u16, String) {
-    let mut s = TcpStream::connect(addr).expect("connect http");
-    s.set_read_timeout(Some(Duration::from_secs(10))).unwrap();
-    write!(
-        s,
-        "GET {path} HTTP/1.1\r\nHost: {addr}\r\nConnection: close\r\n\r\n"
-    )
-    .unwrap();
-    let mut buf = Vec::new();
-    s.read_to_end(&mut buf).unwrap();
-    let text = String::from_utf8_lossy(&buf).into_owned();
-    let status = text
-        .split_whitespace()
-        .nth(1)
-        .and_then(|c| c.parse().ok())
-        .unwrap_or(0);
-    let body = text
-        .split_once("\r\n\r\n")
-        .map(|(_, b)| b.to_string())
-        .unwrap_or_default();
-    // Chunked bodies: keep it simple by stripping chunk-size lines when present.
-    let body = if text
-        .to_ascii_lowercase()
-        .contains("transfer-encoding: chunked")
-    {
-        dechunk(&body)
-    } else {
-        body
-    };
-    (status, body)
-}
-
-fn dechunk(body: &str) -> String {
-    let mut out = String::new();
-    let mut rest = body;
-    while let Some((size, tail)) = rest.split_once("\r\n") {
-        let n = usize::from_str_radix(size.trim(), 16).unwrap_or(0);
-        if n == 0 || tail.len() < n {
-            break;
-        }
-        out.push_str(&tail[..n]);
-        rest = tail[n..].trim_start_matches("\r\n");
-    }
-    out
-}
-
-fn metric(text: &str, name: &str) -> f64 {
-    text.lines()
-        .find(|l| l.starts_with(name) && l[name.len()..].starts_with(' '))
-        .and_then(|l| l.rsplit(' ').next())
-        .and_then(|v| v.parse().ok())
-        .unwrap_or(f64::NAN)
-}
-
-fn now_ms() -> i64 {
-    std::time::SystemTime::now()
-        .duration_since(std::time::UNIX_EPOCH)
-        .unwrap()
-        .as_millis() as i64
-}
-
-fn wait_until(mut f: impl FnMut() -> bool, secs: u64, what: &str) {
-    let deadline = Instant::now() + Duration::from_secs(secs);
-    while Instant::now() < deadline {
-        if f() {
-            return;
-        }
-        std::thread::sleep(Duration::from_millis(100));
-    }
-    panic!("timed out waiting for {what}");
+/// `get` with an `Authorization: Bearer` header.
+fn get_bearer(addr: &str, path: &str, token: &str) -> (u16, String) {
+    request(addr, path, &format!("Authorization: Bearer {token}\r\n"))
 }
 
 #[test]
@@ -557,30 +445,6 @@ fn idle_connections_are_closed_and_the_budget_eta_counts_down() {
     let current = if remaining < 4.0 { remaining } else { 0.0 };
     assert_eq!(eta, whole + current, "{m}");
     assert!(eta < 8.0, "the ETA went down: {m}");
-}
-
-/// `get` with an `Authorization: Bearer` header.
-fn get_bearer(addr: &str, path: &str, token: &str) -> (u16, String) {
-    let mut s = TcpStream::connect(addr).expect("connect http");
-    s.set_read_timeout(Some(Duration::from_secs(10))).unwrap();
-    write!(
-        s,
-        "GET {path} HTTP/1.1\r\nHost: {addr}\r\nAuthorization: Bearer {token}\r\nConnection: close\r\n\r\n"
-    )
-    .unwrap();
-    let mut buf = Vec::new();
-    s.read_to_end(&mut buf).unwrap();
-    let text = String::from_utf8_lossy(&buf).into_owned();
-    let status = text
-        .split_whitespace()
-        .nth(1)
-        .and_then(|c| c.parse().ok())
-        .unwrap_or(0);
-    let body = text
-        .split_once("\r\n\r\n")
-        .map(|(_, b)| b.to_string())
-        .unwrap_or_default();
-    (status, body)
 }
 
 #[test]

@@ -21,10 +21,12 @@
 //!   ≈ 48 MB) plus the ingest queue (64 batches × 512 lines × 150 bytes ≈ 5 MB) plus the
 //!   runtime's baseline; 256 MiB leaves room for allocator slack and the release history.
 
-use std::io::{BufRead, BufReader, Read, Write};
+mod common;
+
+use common::{Daemon, metric, now_ms, start_run};
+use std::io::Write;
 use std::net::TcpStream;
 use std::path::Path;
-use std::process::{Child, Command, Stdio};
 use std::sync::atomic::{AtomicBool, Ordering};
 use std::sync::{Arc, Mutex};
 use std::time::{Duration, Instant};
@@ -44,19 +46,6 @@ const RSS_CAP_MIB: f64 = 256.0;
 /// One line in `BAD_EVERY` is malformed, one in `LATE_EVERY` is 30 s old.
 const BAD_EVERY: u64 = 200;
 const LATE_EVERY: u64 = 500;
-
-struct Daemon {
-    child: Child,
-    http: String,
-    tcp: String,
-}
-
-impl Drop for Daemon {
-    fn drop(&mut self) {
-        let _ = self.child.kill();
-        let _ = self.child.wait();
-    }
-}
 
 /// The demo's statistics on 2-second windows (so that about 30 windows close and release
 /// during the run), unit-level privacy, loopback listeners on ports chosen at run time.
@@ -135,86 +124,16 @@ dir = "{state}"
     )
 }
 
-/// Starts `scrim run` and reads the addresses it prints (as tests/daemon.rs does).
 fn start(dir: &Path) -> Daemon {
-    std::fs::write(dir.join("scrim.toml"), config(dir)).expect("write config");
-    let mut child = Command::new(env!("CARGO_BIN_EXE_scrim"))
-        .args(["run", "--config", "scrim.toml"])
-        .current_dir(dir)
-        .stdin(Stdio::null())
-        .stdout(Stdio::null())
-        .stderr(Stdio::piped())
-        .spawn()
-        .expect("scrim runs");
-    let stderr = child.stderr.take().expect("stderr piped");
-    let (tx, rx) = std::sync::mpsc::channel();
-    std::thread::spawn(move || {
-        for line in BufReader::new(stderr).lines().map_while(Result::ok) {
-            let _ = tx.send(line);
-        }
-    });
-    let (mut http, mut tcp) = (None, None);
-    let deadline = Instant::now() + Duration::from_secs(30);
-    while (http.is_none() || tcp.is_none()) && Instant::now() < deadline {
-        if let Ok(line) = rx.recv_timeout(Duration::from_millis(200)) {
-            if let Some(a) = line.strip_prefix("scrim: http listening on ") {
-                http = Some(a.trim().to_string());
-            }
-            if let Some(a) = line.strip_prefix("scrim: tcp source 0 listening on ") {
-                tcp = Some(a.trim().to_string());
-            }
-        }
-    }
-    std::thread::spawn(move || while rx.recv().is_ok() {});
-    Daemon {
-        child,
-        http: http.expect("http address printed"),
-        tcp: tcp.expect("tcp address printed"),
-    }
+    start_run(dir, &config(dir), &[])
 }
 
-/// A plain HTTP/1.1 GET: (status, body). Metric lines are searched whole, so a chunked
-/// body's size lines do no harm.
 fn get_status(addr: &str, path: &str) -> (u16, String) {
-    let Ok(mut s) = TcpStream::connect(addr) else {
-        return (0, String::new());
-    };
-    s.set_read_timeout(Some(Duration::from_secs(10)))
-        .expect("timeout");
-    if write!(
-        s,
-        "GET {path} HTTP/1.1\r\nHost: {addr}\r\nConnection: close\r\n\r\n"
-    )
-    .is_err()
-    {
-        return (0, String::new());
-    }
-    let mut buf = Vec::new();
-    let _ = s.read_to_end(&mut buf);
-    let text = String::from_utf8_lossy(&buf).into_owned();
-    let status = text
-        .split_whitespace()
-        .nth(1)
-        .and_then(|c| c.parse().ok())
-        .unwrap_or(0);
-    (
-        status,
-        text.split_once("\r\n\r\n")
-            .map(|(_, b)| b.to_string())
-            .unwrap_or_default(),
-    )
+    common::get(addr, path)
 }
 
 fn get(addr: &str, path: &str) -> String {
     get_status(addr, path).1
-}
-
-fn metric(text: &str, name: &str) -> f64 {
-    text.lines()
-        .find(|l| l.starts_with(name) && l[name.len()..].starts_with(' '))
-        .and_then(|l| l.rsplit(' ').next())
-        .and_then(|v| v.parse().ok())
-        .unwrap_or(f64::NAN)
 }
 
 /// A field of /proc/PID/status in MiB (VmRSS, VmHWM).
@@ -234,12 +153,6 @@ fn proc_mib(pid: u32, field: &str) -> f64 {
             })
         })
         .map_or(f64::NAN, |kib| kib / 1024.0)
-}
-
-fn now_ms() -> i64 {
-    std::time::SystemTime::now()
-        .duration_since(std::time::UNIX_EPOCH)
-        .map_or(0, |d| d.as_millis() as i64)
 }
 
 /// What one sender wrote.
