@@ -2268,12 +2268,14 @@ impl Config {
     /// kind, fields, ranges, bounds, fit, group keys, weight, trailing), in order. State saved
     /// under one fingerprint must not be resumed under another.
     ///
-    /// `allowed_lateness` and `max_line_bytes` are in as well: they do not change one unit's
-    /// sensitivity, but they decide which events are accepted, so a log of input lines replayed
-    /// under other values could derive releases that differ from those already published.
+    /// `allowed_lateness`, `max_line_bytes` and `idle_close` are in as well: they do not
+    /// change one unit's sensitivity, but they decide which events are accepted and when a
+    /// logged wall-clock tick closes a window, so a log of inputs replayed under other values
+    /// could derive releases that differ from those already published (the same tree nodes,
+    /// hence the same noise, over different data).
     ///
-    /// Left out, because only `run` uses them and they cannot change what a release reveals
-    /// (contract.md, "Config"): sources, http, output, state and `idle_close`.
+    /// Left out, because they cannot change what a release reveals (contract.md, "Config"):
+    /// sources, http, output and state.
     pub fn fingerprint(&self) -> String {
         let mut w = FingerprintWriter(blake3::Hasher::new());
         w.text("domain", FINGERPRINT_DOMAIN);
@@ -2285,6 +2287,7 @@ impl Config {
         w.count("input.max_line_bytes", self.input.max_line_bytes);
         w.int("window.length", self.window.length.0);
         w.int("window.allowed_lateness", self.window.allowed_lateness.0);
+        w.int("window.idle_close", self.window.idle_close.0);
         let p = &self.privacy;
         w.float("privacy.rho_per_epoch", p.rho_per_epoch);
         w.float("privacy.delta", p.delta);
