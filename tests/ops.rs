@@ -12,11 +12,14 @@
 //! The screenshot of the live dashboard is left at `target/dashboard.png` (next to the
 //! `tmp` directory Cargo gives integration tests, so it follows `CARGO_TARGET_DIR`).
 
+mod common;
+
+use common::{Daemon, get, metric, now_ms, start_run, wait_until};
 use std::collections::{BTreeMap, BTreeSet};
-use std::io::{BufRead, BufReader, Read, Write};
-use std::net::{TcpListener, TcpStream};
+use std::io::{Read, Write};
+use std::net::TcpListener;
 use std::path::{Path, PathBuf};
-use std::process::{Child, Command, Output, Stdio};
+use std::process::{Command, Output, Stdio};
 use std::sync::{Arc, Mutex};
 use std::time::{Duration, Instant};
 
@@ -129,96 +132,8 @@ fn repo() -> &'static Path {
     Path::new(env!("CARGO_MANIFEST_DIR"))
 }
 
-struct Daemon {
-    child: Child,
-    http: String,
-}
-
-impl Drop for Daemon {
-    fn drop(&mut self) {
-        let _ = self.child.kill();
-        let _ = self.child.wait();
-    }
-}
-
-/// Starts `scrim run` in `dir` with `cfg` and waits for its HTTP address on stderr (as
-/// tests/daemon.rs does: port 0, "scrim: http listening on ADDR").
 fn start_daemon(dir: &Path, cfg: &str) -> Daemon {
-    std::fs::write(dir.join("scrim.toml"), cfg).unwrap();
-    let mut cmd = command(env!("CARGO_BIN_EXE_scrim"));
-    cmd.args(["run", "--config", "scrim.toml"])
-        .current_dir(dir)
-        .stdin(Stdio::null())
-        .stdout(Stdio::null())
-        .stderr(Stdio::piped());
-    let mut child = cmd.spawn().expect("scrim runs");
-    let stderr = child.stderr.take().unwrap();
-    let (tx, rx) = std::sync::mpsc::channel();
-    std::thread::spawn(move || {
-        for line in BufReader::new(stderr).lines().map_while(Result::ok) {
-            let _ = tx.send(line);
-        }
-    });
-    let mut http = None;
-    let mut seen = Vec::new();
-    let deadline = Instant::now() + Duration::from_secs(60);
-    while http.is_none() && Instant::now() < deadline {
-        if let Ok(line) = rx.recv_timeout(Duration::from_millis(200)) {
-            if let Some(a) = line.strip_prefix("scrim: http listening on ") {
-                http = Some(a.trim().to_string());
-            }
-            seen.push(line);
-        }
-        if let Ok(Some(status)) = child.try_wait() {
-            panic!("scrim run exited with {status}:\n{}", seen.join("\n"));
-        }
-    }
-    std::thread::spawn(move || while rx.recv().is_ok() {});
-    let http = http.unwrap_or_else(|| panic!("no http address printed:\n{}", seen.join("\n")));
-    Daemon { child, http }
-}
-
-/// A plain HTTP/1.1 GET (no client crate needed); returns status and body.
-fn get(addr: &str, path: &str) -> (u16, String) {
-    let mut s = TcpStream::connect(addr).expect("connect http");
-    s.set_read_timeout(Some(Duration::from_secs(10))).unwrap();
-    write!(
-        s,
-        "GET {path} HTTP/1.1\r\nHost: {addr}\r\nConnection: close\r\n\r\n"
-    )
-    .unwrap();
-    let mut buf = Vec::new();
-    s.read_to_end(&mut buf).unwrap();
-    let text = String::from_utf8_lossy(&buf).into_owned();
-    let status = text
-        .split_whitespace()
-        .nth(1)
-        .and_then(|c| c.parse().ok())
-        .unwrap_or(0);
-    let (head, body) = text.split_once("\r\n\r\n").unwrap_or((&text, ""));
-    let body = if head
-        .to_ascii_lowercase()
-        .contains("transfer-encoding: chunked")
-    {
-        dechunk(body)
-    } else {
-        body.to_string()
-    };
-    (status, body)
-}
-
-fn dechunk(body: &str) -> String {
-    let mut out = String::new();
-    let mut rest = body;
-    while let Some((size, tail)) = rest.split_once("\r\n") {
-        let n = usize::from_str_radix(size.trim(), 16).unwrap_or(0);
-        if n == 0 || tail.len() < n {
-            break;
-        }
-        out.push_str(&tail[..n]);
-        rest = tail[n..].trim_start_matches("\r\n");
-    }
-    out
+    start_run(dir, cfg, &[])
 }
 
 fn get_json(addr: &str, path: &str) -> Value {
@@ -241,33 +156,6 @@ fn all_releases(addr: &str) -> Vec<Value> {
         after = page["next_after"].as_u64();
         out.extend(recs);
     }
-}
-
-/// Value of an unlabelled sample (or a full `name{labels}` key) in Prometheus text.
-fn metric(text: &str, key: &str) -> f64 {
-    text.lines()
-        .find(|l| l.starts_with(key) && l[key.len()..].starts_with(' '))
-        .and_then(|l| l.rsplit(' ').next())
-        .and_then(|v| v.parse().ok())
-        .unwrap_or(f64::NAN)
-}
-
-fn wait_until(mut f: impl FnMut() -> bool, secs: u64, what: &str) {
-    let deadline = Instant::now() + Duration::from_secs(secs);
-    while Instant::now() < deadline {
-        if f() {
-            return;
-        }
-        std::thread::sleep(Duration::from_millis(200));
-    }
-    panic!("timed out after {secs} s waiting for {what}");
-}
-
-fn now_ms() -> i64 {
-    std::time::SystemTime::now()
-        .duration_since(std::time::UNIX_EPOCH)
-        .unwrap()
-        .as_millis() as i64
 }
 
 /// Runs headless Chromium with the flags the ops task fixes, plus `extra`; returns the DOM.

@@ -1,4 +1,5 @@
-//! Scaffolding shared by the black-box tests of `scrim run` (tests/daemon.rs, tests/load.rs):
+//! Scaffolding shared by the black-box tests of `scrim run` (tests/daemon.rs, tests/load.rs,
+//! tests/ops.rs):
 //! starting the real binary on ports chosen at run time, plain HTTP/1.1 requests without a
 //! client stack (crates.md), Prometheus text lookups and polling.
 #![allow(dead_code)] // each test crate uses its own subset
@@ -14,7 +15,7 @@ pub struct Daemon {
     pub child: Child,
     /// The HTTP address it printed.
     pub http: String,
-    /// The address of TCP source 0 it printed.
+    /// The address of TCP source 0 it printed (empty without a TCP source).
     pub tcp: String,
 }
 
@@ -25,11 +26,19 @@ impl Drop for Daemon {
     }
 }
 
-/// Writes `cfg` to `dir/scrim.toml`, starts `scrim run` there with the extra environment
-/// `env`, and reads the HTTP and TCP addresses it prints on stderr (within 30 s).
+/// Writes `cfg` to `dir/scrim.toml` and starts `scrim run` there with the extra environment
+/// `env` (and no inherited `SCRIM_*` variables, which would configure the daemon). Reads the
+/// HTTP address it prints on stderr, and the TCP source's when `cfg` declares one (`tcp` is
+/// empty otherwise); panics with what the daemon printed if it exits or prints nothing
+/// within 60 s.
 pub fn start_run(dir: &Path, cfg: &str, env: &[(&str, &str)]) -> Daemon {
     std::fs::write(dir.join("scrim.toml"), cfg).expect("write config");
     let mut cmd = Command::new(env!("CARGO_BIN_EXE_scrim"));
+    for (k, _) in std::env::vars_os() {
+        if k.to_string_lossy().starts_with("SCRIM_") {
+            cmd.env_remove(k);
+        }
+    }
     cmd.args(["run", "--config", "scrim.toml"])
         .current_dir(dir)
         .stdin(Stdio::null())
@@ -46,9 +55,11 @@ pub fn start_run(dir: &Path, cfg: &str, env: &[(&str, &str)]) -> Daemon {
             let _ = tx.send(line);
         }
     });
+    let wants_tcp = cfg.contains("kind = \"tcp\"");
     let (mut http, mut tcp) = (None, None);
-    let deadline = Instant::now() + Duration::from_secs(30);
-    while (http.is_none() || tcp.is_none()) && Instant::now() < deadline {
+    let mut seen = Vec::new();
+    let deadline = Instant::now() + Duration::from_secs(60);
+    while (http.is_none() || (wants_tcp && tcp.is_none())) && Instant::now() < deadline {
         if let Ok(line) = rx.recv_timeout(Duration::from_millis(200)) {
             if let Some(a) = line.strip_prefix("scrim: http listening on ") {
                 http = Some(a.trim().to_string());
@@ -56,14 +67,22 @@ pub fn start_run(dir: &Path, cfg: &str, env: &[(&str, &str)]) -> Daemon {
             if let Some(a) = line.strip_prefix("scrim: tcp source 0 listening on ") {
                 tcp = Some(a.trim().to_string());
             }
+            seen.push(line);
+        }
+        if let Ok(Some(status)) = child.try_wait() {
+            panic!("scrim run exited with {status}:\n{}", seen.join("\n"));
         }
     }
     // Keep draining stderr so the daemon never blocks on a full pipe.
     std::thread::spawn(move || while rx.recv().is_ok() {});
+    let http = http.unwrap_or_else(|| panic!("no http address printed:\n{}", seen.join("\n")));
+    if wants_tcp && tcp.is_none() {
+        panic!("no tcp address printed:\n{}", seen.join("\n"));
+    }
     Daemon {
         child,
-        http: http.expect("http address printed"),
-        tcp: tcp.expect("tcp address printed"),
+        http,
+        tcp: tcp.unwrap_or_default(),
     }
 }
 
