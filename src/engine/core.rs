@@ -24,7 +24,7 @@ use crate::engine::event::{Event, LineParser, RejectReason, Rejection, Schema};
 use crate::engine::ledger::{BudgetError, EpochCharge, Ledger};
 use crate::engine::linear;
 use crate::engine::mechanism::{self, ContinualMechanism, NodeAddr, NodeNoise};
-use crate::engine::noise::{self, NoiseId, NoiseKey};
+use crate::engine::noise::{self, KeyedHash64, NoiseId, NoiseKey};
 use crate::engine::plan::{
     ComponentPlan, ComponentRole, Plan, PlanError, PrivacyLevel, Scope, StatPlan,
 };
@@ -165,6 +165,8 @@ pub struct Engine {
     /// Shared with [`LineDecoder`]s handed to parse workers; never mutated after `new`.
     parser: Arc<LineParser>,
     key: NoiseKey,
+    /// `key`'s hashers for unit ids and bounding priorities, derived once.
+    hashers: EventHashers,
     opts: EngineOptions,
     window_ms: i64,
     lateness_ms: i64,
@@ -268,6 +270,7 @@ impl Engine {
                 carry.first_epoch,
             ),
             parser: Arc::new(parser),
+            hashers: EventHashers::new(&key),
             key,
             opts,
             window_ms,
@@ -347,7 +350,7 @@ impl Engine {
 
     /// Parses and handles one input line (without its newline).
     pub fn handle_line(&mut self, line: &[u8]) {
-        let parsed = decode_line(&self.parser, &self.key, line);
+        let parsed = decode_line(&self.parser, &self.hashers, line);
         self.handle_parsed(parsed);
     }
 
@@ -365,7 +368,7 @@ impl Engine {
     pub fn line_decoder(&self) -> LineDecoder {
         LineDecoder {
             parser: Arc::clone(&self.parser),
-            key: self.key.clone(),
+            hashers: self.hashers.clone(),
             bounding: self.bounder.is_some(),
         }
     }
@@ -420,7 +423,7 @@ impl Engine {
         self.max_event_time = Some(self.max_event_time.map_or(ev.time, |m| m.max(ev.time)));
         match (&mut self.bounder, ev.unit) {
             (Some(b), Some(unit)) => {
-                let prio = priority.unwrap_or_else(|| event_priority(&self.key, unit, &ev));
+                let prio = priority.unwrap_or_else(|| event_priority(&self.hashers, unit, &ev));
                 self.counters.dropped_event_bound += b.offer(w, unit, prio, ev);
             }
             _ => {
@@ -684,7 +687,7 @@ impl Engine {
 #[derive(Clone, Debug)]
 pub struct LineDecoder {
     parser: Arc<LineParser>,
-    key: NoiseKey,
+    hashers: EventHashers,
     /// The engine bounds contributions per unit, so [`LineDecoder::prepare`] computes the
     /// bounding priority too.
     bounding: bool,
@@ -710,7 +713,7 @@ impl Prepared {
 impl LineDecoder {
     /// Parses one line (without its newline) exactly as [`Engine::handle_line`] does.
     pub fn decode(&self, line: &[u8]) -> Result<Event, Rejection> {
-        decode_line(&self.parser, &self.key, line)
+        decode_line(&self.parser, &self.hashers, line)
     }
 
     /// [`LineDecoder::decode`] plus the event's bounding priority when the engine bounds
@@ -720,7 +723,7 @@ impl LineDecoder {
     pub fn prepare(&self, line: &[u8]) -> Prepared {
         let parsed = self.decode(line);
         let priority = match (&parsed, self.bounding) {
-            (Ok(ev), true) => ev.unit.map(|unit| event_priority(&self.key, unit, ev)),
+            (Ok(ev), true) => ev.unit.map(|unit| event_priority(&self.hashers, unit, ev)),
             _ => None,
         };
         Prepared { parsed, priority }
@@ -732,24 +735,66 @@ impl LineDecoder {
     }
 }
 
+/// The noise key's keyed hashes that every event needs, subkeys derived once
+/// ([`NoiseKey::hasher64`]; the values are those of `hash64` in the same domains).
+#[derive(Clone, Debug)]
+struct EventHashers {
+    /// Domain "unit": unit ids.
+    unit: KeyedHash64,
+    /// Domain "priority": bounding priorities.
+    priority: KeyedHash64,
+}
+
+impl EventHashers {
+    fn new(key: &NoiseKey) -> EventHashers {
+        EventHashers {
+            unit: key.hasher64("unit"),
+            priority: key.hasher64("priority"),
+        }
+    }
+}
+
 /// The one place a line becomes an event: the unit id is replaced by its keyed hash.
-fn decode_line(parser: &LineParser, key: &NoiseKey, line: &[u8]) -> Result<Event, Rejection> {
-    parser.parse(line, &|raw: &[u8]| key.hash64("unit", raw))
+fn decode_line(
+    parser: &LineParser,
+    hashers: &EventHashers,
+    line: &[u8],
+) -> Result<Event, Rejection> {
+    parser.parse(line, &|raw: &[u8]| hashers.unit.hash(raw))
 }
 
 /// Priority of an event for bottom-k bounding: a keyed hash of the unit and the event's
-/// content, independent of arrival order and of other units (see `bound`).
-fn event_priority(key: &NoiseKey, unit: u64, ev: &Event) -> u64 {
-    let mut buf = Vec::with_capacity(16 + 4 * ev.categories.len() + 8 * ev.numbers.len());
-    buf.extend_from_slice(&unit.to_le_bytes());
-    buf.extend_from_slice(&ev.time.0.to_le_bytes());
+/// content (unit, time, categories, numbers as little-endian bytes, in that order),
+/// independent of arrival order and of other units (see `bound`). Fed to BLAKE3 piece by
+/// piece, which hashes exactly the concatenation.
+fn event_priority(hashers: &EventHashers, unit: u64, ev: &Event) -> u64 {
+    let mut h = [0u8; 16];
+    h[..8].copy_from_slice(&unit.to_le_bytes());
+    h[8..].copy_from_slice(&ev.time.0.to_le_bytes());
+    let mut body = [0u8; 256];
+    let n_body = 4 * ev.categories.len() + 8 * ev.numbers.len();
+    if n_body > body.len() {
+        // Many fields: fall back to one buffer (same bytes, same hash).
+        let mut buf = Vec::with_capacity(16 + n_body);
+        buf.extend_from_slice(&h);
+        for c in &ev.categories {
+            buf.extend_from_slice(&c.to_le_bytes());
+        }
+        for x in &ev.numbers {
+            buf.extend_from_slice(&x.to_bits().to_le_bytes());
+        }
+        return hashers.priority.hash(&buf);
+    }
+    let mut at = 0;
     for c in &ev.categories {
-        buf.extend_from_slice(&c.to_le_bytes());
+        body[at..at + 4].copy_from_slice(&c.to_le_bytes());
+        at += 4;
     }
-    for n in &ev.numbers {
-        buf.extend_from_slice(&n.to_bits().to_le_bytes());
+    for x in &ev.numbers {
+        body[at..at + 8].copy_from_slice(&x.to_bits().to_le_bytes());
+        at += 8;
     }
-    key.hash64("priority", &buf)
+    hashers.priority.hash_parts(&[&h, &body[..at]])
 }
 
 impl WindowAgg {
