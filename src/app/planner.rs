@@ -451,13 +451,17 @@ fn error_drivers(config: &Config, plan: &Plan, si: usize) -> Vec<DriverView> {
     if let (PrivacyLevel::Unit { .. }, Some(b)) = (&plan.level, config.privacy.unit_bounds) {
         let k = b.max_events_per_window;
         let m = b.max_windows_per_epoch;
-        let halve_k = (k >= 2).then(|| {
-            let mut c = config.clone();
-            if let Some(u) = c.privacy.unit_bounds.as_mut() {
-                u.max_events_per_window = k / 2;
-            }
-            (k / 2, ratio(&c))
-        });
+        // Halves one per-unit cap (when it can be halved) and re-plans.
+        let halve = |cap: u32, set: fn(&mut crate::config::UnitBounds, u32)| {
+            (cap >= 2).then(|| {
+                let mut c = config.clone();
+                if let Some(u) = c.privacy.unit_bounds.as_mut() {
+                    set(u, cap / 2);
+                }
+                (cap / 2, ratio(&c))
+            })
+        };
+        let halve_k = halve(k, |u, v| u.max_events_per_window = v);
         out.push(DriverView {
             bound: "privacy.max_events_per_window".to_string(),
             value: k.into(),
@@ -465,13 +469,7 @@ fn error_drivers(config: &Config, plan: &Plan, si: usize) -> Vec<DriverView> {
             halved: halve_k.map(|(h, _)| h.into()),
             std_error_ratio_if_halved: halve_k.and_then(|(_, r)| r),
         });
-        let halve_m = (m >= 2).then(|| {
-            let mut c = config.clone();
-            if let Some(u) = c.privacy.unit_bounds.as_mut() {
-                u.max_windows_per_epoch = m / 2;
-            }
-            (m / 2, ratio(&c))
-        });
+        let halve_m = halve(m, |u, v| u.max_windows_per_epoch = v);
         out.push(DriverView {
             bound: "privacy.max_windows_per_epoch".to_string(),
             value: m.into(),

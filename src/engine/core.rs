@@ -768,33 +768,16 @@ fn decode_line(
 /// independent of arrival order and of other units (see `bound`). Fed to BLAKE3 piece by
 /// piece, which hashes exactly the concatenation.
 fn event_priority(hashers: &EventHashers, unit: u64, ev: &Event) -> u64 {
-    let mut h = [0u8; 16];
-    h[..8].copy_from_slice(&unit.to_le_bytes());
-    h[8..].copy_from_slice(&ev.time.0.to_le_bytes());
-    let mut body = [0u8; 256];
-    let n_body = 4 * ev.categories.len() + 8 * ev.numbers.len();
-    if n_body > body.len() {
-        // Many fields: fall back to one buffer (same bytes, same hash).
-        let mut buf = Vec::with_capacity(16 + n_body);
-        buf.extend_from_slice(&h);
+    hashers.priority.hash_with(|feed| {
+        feed(&unit.to_le_bytes());
+        feed(&ev.time.0.to_le_bytes());
         for c in &ev.categories {
-            buf.extend_from_slice(&c.to_le_bytes());
+            feed(&c.to_le_bytes());
         }
         for x in &ev.numbers {
-            buf.extend_from_slice(&x.to_bits().to_le_bytes());
+            feed(&x.to_bits().to_le_bytes());
         }
-        return hashers.priority.hash(&buf);
-    }
-    let mut at = 0;
-    for c in &ev.categories {
-        body[at..at + 4].copy_from_slice(&c.to_le_bytes());
-        at += 4;
-    }
-    for x in &ev.numbers {
-        body[at..at + 8].copy_from_slice(&x.to_bits().to_le_bytes());
-        at += 8;
-    }
-    hashers.priority.hash_parts(&[&h, &body[..at]])
+    })
 }
 
 impl WindowAgg {

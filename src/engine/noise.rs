@@ -166,16 +166,17 @@ impl fmt::Debug for KeyedHash64 {
 impl KeyedHash64 {
     /// `hash64(domain, data)`.
     pub fn hash(&self, data: &[u8]) -> u64 {
-        self.hash_parts(&[data])
+        self.hash_with(|feed| feed(data))
     }
 
-    /// `hash64(domain, parts concatenated)`, without building the concatenation: BLAKE3's
-    /// incremental hashing of a byte sequence does not depend on how it is split.
-    pub fn hash_parts(&self, parts: &[&[u8]]) -> u64 {
+    /// `hash64(domain, bytes)` where `write` feeds the bytes in pieces (`feed(piece)`), so
+    /// callers need not build the concatenation: BLAKE3's incremental hashing of a byte
+    /// sequence does not depend on how it is split.
+    pub fn hash_with(&self, write: impl FnOnce(&mut dyn FnMut(&[u8]))) -> u64 {
         let mut h = blake3::Hasher::new_keyed(&self.subkey);
-        for p in parts {
-            h.update(p);
-        }
+        write(&mut |piece: &[u8]| {
+            h.update(piece);
+        });
         let digest = h.finalize();
         let mut first8 = [0u8; 8];
         first8.copy_from_slice(&digest.as_bytes()[..8]);
@@ -1405,10 +1406,12 @@ mod tests {
         // The cached hasher gives the same values, however the input is split.
         let cached = key.hasher64("unit");
         assert_eq!(cached.hash(b"alice"), key.hash64("unit", b"alice"));
-        assert_eq!(
-            cached.hash_parts(&[b"al", b"", b"ice"]),
-            key.hash64("unit", b"alice")
-        );
+        let split = cached.hash_with(|feed| {
+            feed(b"al");
+            feed(b"");
+            feed(b"ice");
+        });
+        assert_eq!(split, key.hash64("unit", b"alice"));
         assert_eq!(format!("{cached:?}"), "KeyedHash64(<redacted>)");
         let h = key.hash64("unit", b"alice");
         assert_eq!(h, key.hash64("unit", b"alice"));
