@@ -1269,8 +1269,8 @@ fn unshift(layout: &Layout, mut coefficients: Vec<f64>, shift: Option<&Shift>) -
 
 /// [`fit`] of statistics accumulated on centred data (`shift`), with coefficients and
 /// standard errors reported for the uncentred model ([`unshift`]). `shift` is ignored without
-/// an intercept. The numerics are those of [`fit`]; the centring happens before the release,
-/// so it is post-processing-free and costs nothing.
+/// an intercept. The numerics are those of [`fit`]. The centres come from the configuration,
+/// not the data, so centring costs no budget, and mapping back is post-processing.
 pub fn fit_shifted<R: Rng + ?Sized>(
     layout: &Layout,
     values: &[Dd],
