@@ -429,8 +429,8 @@ fn valid_event(rng: &mut ChaCha20Rng, deep_extra: bool) -> Written {
         expected: Event {
             time: Millis(ms),
             unit: Some(test_hash(unit_canonical.as_bytes())),
-            categories: vec![zone as u32, mode as u32],
-            numbers,
+            categories: [zone as u32, mode as u32].into_iter().collect(),
+            numbers: numbers.into_iter().collect(),
         },
         lead,
     }
@@ -847,8 +847,10 @@ fn oracle_event(line: &[u8]) -> Option<Event> {
     Some(Event {
         time: Millis(time),
         unit: Some(test_hash(unit_text.as_bytes())),
-        categories: vec![category("zone", &ZONES)?, category("mode", &MODES)?],
-        numbers,
+        categories: [category("zone", &ZONES)?, category("mode", &MODES)?]
+            .into_iter()
+            .collect(),
+        numbers: numbers.into_iter().collect(),
     })
 }
 
@@ -1023,8 +1025,8 @@ proptest! {
         let want = Event {
             time: Millis(ms),
             unit: Some(test_hash(canonical.as_bytes())),
-            categories: vec![zone as u32, mode as u32],
-            numbers,
+            categories: [zone as u32, mode as u32].into_iter().collect(),
+            numbers: numbers.into_iter().collect(),
         };
         prop_assert!(
             event.as_ref().is_ok_and(|got| same_event(got, &want)),

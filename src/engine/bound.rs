@@ -150,8 +150,8 @@ mod tests {
         Event {
             time: Millis(t),
             unit: Some(1),
-            categories: vec![0],
-            numbers: vec![v],
+            categories: [0].into_iter().collect(),
+            numbers: [v].into_iter().collect(),
         }
     }
 

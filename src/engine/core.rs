@@ -20,7 +20,7 @@ use std::sync::Arc;
 use crate::config::Config;
 use crate::engine::bound::Bounder;
 use crate::engine::dd::Dd;
-use crate::engine::event::{Event, LineParser, RejectReason, Rejection, Schema};
+use crate::engine::event::{Event, LineParser, Numbers, RejectReason, Rejection, Schema};
 use crate::engine::ledger::{BudgetError, EpochCharge, Ledger};
 use crate::engine::linear;
 use crate::engine::mechanism::{self, ContinualMechanism, NodeAddr, NodeNoise};
@@ -837,7 +837,7 @@ fn contribute(c: &ComponentPlan, ev: &Event, slot: &mut [i128]) {
         } => {
             // Clip in value units, then centre and normalise (see `plan::MomentUnits`) so the
             // packed moments have comparable scales.
-            let mut x: Vec<f64> = features.iter().map(|&i| ev.numbers[i]).collect();
+            let mut x: Numbers = features.iter().map(|&i| ev.numbers[i]).collect();
             let mut y = ev.numbers[*target];
             units.normalise(&mut x, &mut y);
             linear::accumulate(layout, &x, y, c.grid_exp, slot);

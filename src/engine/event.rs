@@ -61,6 +61,13 @@ pub struct Schema {
     pub max_line_bytes: usize,
 }
 
+/// Category indices of one event, inline up to four fields (no heap allocation per event
+/// for typical schemas; more fields spill to the heap transparently).
+pub type Categories = smallvec::SmallVec<[u32; 4]>;
+
+/// Numeric values of one event, inline up to eight fields.
+pub type Numbers = smallvec::SmallVec<[f64; 8]>;
+
 /// A validated event. `categories[i]` is the domain index of `schema.categories[i]`;
 /// `numbers[i]` the value of `schema.numbers[i]`; `unit` the keyed hash of the unit id.
 #[derive(Clone, Debug, PartialEq)]
@@ -70,9 +77,9 @@ pub struct Event {
     /// Keyed hash of the unit id's canonical text; `None` when the schema has no unit field.
     pub unit: Option<u64>,
     /// Domain index of each category field, in schema order.
-    pub categories: Vec<u32>,
+    pub categories: Categories,
     /// Value of each numeric field, in schema order; finite with `|x| <= 1e15`.
-    pub numbers: Vec<f64>,
+    pub numbers: Numbers,
 }
 
 /// Why a schema cannot be turned into a parser.
@@ -589,9 +596,9 @@ struct LineScan<'p> {
     time: Option<Millis>,
     unit: Option<u64>,
     /// [`CATEGORY_UNSEEN`] until the field is read.
-    categories: Vec<u32>,
+    categories: Categories,
     /// NaN until the field is read (an accepted number is finite, so NaN is never a value).
-    numbers: Vec<f64>,
+    numbers: Numbers,
     /// The first semantic fault in line order, with its slot.
     fault: Option<(RejectReason, Slot)>,
     /// The slot whose value serde_json is reading right now; left set if reading it failed.
@@ -613,8 +620,8 @@ impl<'p> LineScan<'p> {
             unit_hash,
             time: None,
             unit: None,
-            categories: vec![CATEGORY_UNSEEN; parser.schema.categories.len()],
-            numbers: vec![f64::NAN; parser.schema.numbers.len()],
+            categories: smallvec::smallvec![CATEGORY_UNSEEN; parser.schema.categories.len()],
+            numbers: smallvec::smallvec![f64::NAN; parser.schema.numbers.len()],
             fault: None,
             pending: None,
         }
@@ -1018,14 +1025,14 @@ mod tests {
         assert_eq!(event.time, Millis(SCENARIO_MS));
         assert_eq!(event.unit, Some(test_hash(b"c-7f3a91")));
         // zone "harbour" is index 0 of its list, mode "tram" index 0 of its list.
-        assert_eq!(event.categories, vec![0, 0]);
-        assert_eq!(event.numbers, vec![240.0, 3.8, 14.5, 0.0]);
+        assert_eq!(event.categories.as_slice(), [0, 0]);
+        assert_eq!(event.numbers.as_slice(), [240.0, 3.8, 14.5, 0.0]);
         // Key order does not matter; unknown keys are skipped whatever their shape.
         let reordered = r#"{"transfers":2,"x":{"a":[1,{"b":null}]},"zone":"airport-link","trip_minutes":1e1,"mode":"bus","fare_cents":-5,"trip_km":0.5,"card":"z","ts":0}"#;
         let event = parse(reordered.as_bytes()).expect("valid");
         assert_eq!(event.time, MIN_EVENT_TIME);
-        assert_eq!(event.categories, vec![4, 2]);
-        assert_eq!(event.numbers, vec![-5.0, 0.5, 10.0, 2.0]);
+        assert_eq!(event.categories.as_slice(), [4, 2]);
+        assert_eq!(event.numbers.as_slice(), [-5.0, 0.5, 10.0, 2.0]);
     }
 
     #[test]
@@ -1227,7 +1234,7 @@ mod tests {
     #[test]
     fn categories_must_be_strings_in_their_domain() {
         let zone =
-            |raw: &str| parse(with_field("zone", Some(raw)).as_bytes()).map(|e| e.categories);
+            |raw: &str| parse(with_field("zone", Some(raw)).as_bytes()).map(|e| e.categories.to_vec());
         assert_eq!(zone(r#""riverside""#), Ok(vec![3, 0]));
         // JSON escapes are decoded before the lookup: \u006f is "o".
         assert_eq!(zone(r#""harb\u006fur""#), Ok(vec![0, 0]));
