@@ -24,22 +24,61 @@
 //! active units, not by the event rate.
 
 use std::collections::{BTreeMap, HashMap};
+use std::hash::{BuildHasherDefault, Hasher};
+
+use smallvec::SmallVec;
 
 use crate::engine::event::Event;
 
 /// Events retained for one unit in one open window, at most `k`, with their priorities.
+/// Two fit inline (the demo's `k`); larger bounds spill to the heap.
 #[derive(Debug, Default)]
 struct Retained {
-    events: Vec<(u64, Event)>,
+    events: SmallVec<[(u64, Event); 2]>,
 }
+
+/// Hasher for the bounder's tables, whose keys are unit hashes: outputs of the engine's
+/// keyed BLAKE3 hash, so already uniform 64-bit values that nobody without the key can
+/// steer. Hashing them again with SipHash (the std default, a defence against chosen keys)
+/// buys nothing; one multiplication by an odd constant (a bijection, so distinct keys stay
+/// distinct) with the high half folded down keeps both the low bits hashbrown indexes with
+/// and the top bits it tags with well mixed. The table's iteration order is therefore
+/// deterministic, but nothing depends on it: window aggregates are exact integer sums.
+#[derive(Clone, Copy, Debug, Default)]
+pub struct UnitKeyHasher(u64);
+
+impl Hasher for UnitKeyHasher {
+    fn finish(&self) -> u64 {
+        self.0
+    }
+
+    fn write(&mut self, bytes: &[u8]) {
+        // Not reached for u64 keys (they call `write_u64`); kept correct for any key type.
+        for b in bytes {
+            self.write_u64(u64::from(*b));
+        }
+    }
+
+    fn write_u64(&mut self, v: u64) {
+        // 2^64 / φ, the multiplier of Fibonacci hashing (Knuth, TAOCP vol. 3, §6.4).
+        let p = (self.0 ^ v).wrapping_mul(0x9e37_79b9_7f4a_7c15);
+        self.0 = p ^ (p >> 32);
+    }
+}
+
+/// A map keyed by unit hash (see [`UnitKeyHasher`]).
+pub type UnitMap<V> = HashMap<u64, V, BuildHasherDefault<UnitKeyHasher>>;
 
 /// The per-unit bounding stage of the engine.
 #[derive(Debug)]
 pub struct Bounder {
     max_events_per_window: usize,
     max_windows_per_epoch: u32,
-    open: BTreeMap<i64, HashMap<u64, Retained>>,
-    windows_used: HashMap<u64, u32>,
+    open: BTreeMap<i64, UnitMap<Retained>>,
+    windows_used: UnitMap<u32>,
+    /// Units seen in the last closed window: the capacity a new window's table starts with,
+    /// so steady traffic does not regrow (and rehash) every window's table from empty.
+    last_window_units: usize,
     epoch: Option<u64>,
 }
 
@@ -59,7 +98,8 @@ impl Bounder {
             max_events_per_window: max_events_per_window as usize,
             max_windows_per_epoch,
             open: BTreeMap::new(),
-            windows_used: HashMap::new(),
+            windows_used: UnitMap::default(),
+            last_window_units: 0,
             epoch: None,
         }
     }
@@ -69,10 +109,11 @@ impl Bounder {
     /// retained event with the largest priority.
     pub fn offer(&mut self, window_idx: i64, unit: u64, priority: u64, event: Event) -> u64 {
         let k = self.max_events_per_window;
+        let capacity = self.last_window_units;
         let slot = self
             .open
             .entry(window_idx)
-            .or_default()
+            .or_insert_with(|| UnitMap::with_capacity_and_hasher(capacity, Default::default()))
             .entry(unit)
             .or_default();
         if slot.events.len() < k {
@@ -96,27 +137,40 @@ impl Bounder {
     /// Closes window `window_idx`, which belongs to `epoch`; windows must be closed in
     /// increasing order. Applies the per-epoch window cap.
     pub fn close(&mut self, window_idx: i64, epoch: u64) -> ClosedWindow {
+        let mut kept = Vec::new();
+        let dropped_by_window_cap = self.close_with(window_idx, epoch, |ev| kept.push(ev));
+        ClosedWindow {
+            kept,
+            dropped_by_window_cap,
+        }
+    }
+
+    /// [`Bounder::close`] without collecting: hands every surviving event to `keep` (in no
+    /// particular order) and returns the number dropped by the per-epoch window cap.
+    pub fn close_with(&mut self, window_idx: i64, epoch: u64, mut keep: impl FnMut(Event)) -> u64 {
         if self.epoch != Some(epoch) {
             self.windows_used.clear();
             self.windows_used.shrink_to_fit();
             self.epoch = Some(epoch);
         }
-        let mut out = ClosedWindow::default();
         // Windows before this one can no longer receive events (they are closed too).
-        let units = match self.open.remove(&window_idx) {
-            Some(u) => u,
-            None => return out,
+        let Some(units) = self.open.remove(&window_idx) else {
+            return 0;
         };
+        self.last_window_units = units.len();
+        let mut dropped = 0;
         for (unit, retained) in units {
             let used = self.windows_used.entry(unit).or_insert(0);
             if *used < self.max_windows_per_epoch {
                 *used += 1;
-                out.kept.extend(retained.events.into_iter().map(|(_, e)| e));
+                for (_, ev) in retained.events {
+                    keep(ev);
+                }
             } else {
-                out.dropped_by_window_cap += retained.events.len() as u64;
+                dropped += retained.events.len() as u64;
             }
         }
-        out
+        dropped
     }
 
     /// Units with a window counted in the current epoch.

@@ -503,11 +503,9 @@ impl Engine {
             .remove(&w)
             .unwrap_or_else(|| WindowAgg::empty(&self.plan));
         if let Some(b) = &mut self.bounder {
-            let closed = b.close(w, epoch);
-            self.counters.dropped_window_bound += closed.dropped_by_window_cap;
-            for ev in &closed.kept {
-                agg.add(&self.plan, &self.key_maps, ev);
-            }
+            let (plan, key_maps) = (&self.plan, &self.key_maps);
+            self.counters.dropped_window_bound +=
+                b.close_with(w, epoch, |ev| agg.add(plan, key_maps, &ev));
         }
 
         if self
@@ -822,11 +820,11 @@ fn contribute(c: &ComponentPlan, ev: &Event, slot: &mut [i128]) {
     match &c.role {
         ComponentRole::Count => slot[0] += 1i128 << (-c.grid_exp),
         ComponentRole::Sum { field, lo, hi } => {
-            slot[0] += (ev.numbers[*field].clamp(*lo, *hi) / q).round() as i128;
+            slot[0] += linear::f64_to_i128((ev.numbers[*field].clamp(*lo, *hi) / q).round());
         }
         ComponentRole::CentredSum { field, lo, hi } => {
             let mid = (lo + hi) / 2.0;
-            slot[0] += ((ev.numbers[*field].clamp(*lo, *hi) - mid) / q).round() as i128;
+            slot[0] += linear::f64_to_i128(((ev.numbers[*field].clamp(*lo, *hi) - mid) / q).round());
         }
         ComponentRole::Moments {
             features,

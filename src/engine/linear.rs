@@ -267,7 +267,7 @@ impl Layout {
 }
 
 /// 2^k as an exact f64, for k in the normal exponent range [-1022, 1023].
-fn pow2(k: i32) -> f64 {
+pub(crate) fn pow2(k: i32) -> f64 {
     debug_assert!((-1022..=1023).contains(&k));
     // The biased exponent field of an IEEE 754 double with a zero mantissa is exactly 2^k.
     f64::from_bits(((k + 1023) as u64) << 52)
@@ -365,7 +365,21 @@ fn product_units(a: f64, b: f64, scale: f64) -> i128 {
     } else {
         frac.round()
     };
-    (int_part as i128).saturating_add(frac_units as i128)
+    f64_to_i128(int_part).saturating_add(f64_to_i128(frac_units))
+}
+
+/// `v as i128` (truncation toward zero, saturating, NaN → 0), exactly, but through the
+/// native `f64 → i64` conversion whenever the value fits: the direct cast is a slow
+/// software routine (`__fixdfti`) on x86-64, and this runs for every moment entry of every
+/// event. For |v| < 2^63 truncation fits i64, so both casts give the same integer.
+#[inline]
+pub(crate) fn f64_to_i128(v: f64) -> i128 {
+    const TWO_POW_63: f64 = 9_223_372_036_854_775_808.0;
+    if v.abs() < TWO_POW_63 {
+        i128::from(v as i64)
+    } else {
+        v as i128
+    }
 }
 
 /// Adds one event's contribution round(z_i z_j · 2^-grid_exp) to `acc` (len [`Layout::dim`],
