@@ -505,7 +505,7 @@ impl Engine {
         if let Some(b) = &mut self.bounder {
             let (plan, key_maps) = (&self.plan, &self.key_maps);
             self.counters.dropped_window_bound +=
-                b.close_with(w, epoch, |ev| agg.add(plan, key_maps, &ev));
+                b.close_with(w, epoch, |ev| agg.add(plan, key_maps, ev));
         }
 
         if self
@@ -820,11 +820,13 @@ fn contribute(c: &ComponentPlan, ev: &Event, slot: &mut [i128]) {
     match &c.role {
         ComponentRole::Count => slot[0] += 1i128 << (-c.grid_exp),
         ComponentRole::Sum { field, lo, hi } => {
-            slot[0] += linear::f64_to_i128((ev.numbers[*field].clamp(*lo, *hi) / q).round());
+            slot[0] += linear::f64_to_i128(linear::round_int(ev.numbers[*field].clamp(*lo, *hi) / q));
         }
         ComponentRole::CentredSum { field, lo, hi } => {
             let mid = (lo + hi) / 2.0;
-            slot[0] += linear::f64_to_i128(((ev.numbers[*field].clamp(*lo, *hi) - mid) / q).round());
+            slot[0] += linear::f64_to_i128(linear::round_int(
+                (ev.numbers[*field].clamp(*lo, *hi) - mid) / q,
+            ));
         }
         ComponentRole::Moments {
             features,

@@ -351,11 +351,11 @@ fn product_units(a: f64, b: f64, scale: f64) -> i128 {
     if !big.is_finite() {
         return big as i128;
     }
-    let int_part = big.trunc();
+    let int_part = trunc_int(big);
     let frac = (big - int_part) + err * scale;
     // A tie must go away from zero for the sign of the *total* a·b, which is the sign of p
     // (|err| ≤ ulp(p)/2), not for the sign of the fraction alone.
-    let frac_units = if (frac - frac.trunc()).abs() == 0.5 {
+    let frac_units = if (frac - trunc_int(frac)).abs() == 0.5 {
         let sign = if big != 0.0 {
             big.signum()
         } else {
@@ -363,9 +363,45 @@ fn product_units(a: f64, b: f64, scale: f64) -> i128 {
         };
         frac + 0.5 * sign
     } else {
-        frac.round()
+        round_int(frac)
     };
     f64_to_i128(int_part).saturating_add(f64_to_i128(frac_units))
+}
+
+/// 2^52: from here on every f64 is an integer (the significand has 52 fraction bits).
+const TWO_POW_52: f64 = 4_503_599_627_370_496.0;
+
+/// `v.trunc()` up to the sign of a zero result, for callers that only use the value as an
+/// integer. Baseline x86-64 has no rounding instruction (SSE4.1 `roundsd`), so `f64::trunc`
+/// is a libm call; below 2^52 the round trip through i64 truncates toward zero exactly, and
+/// at or above 2^52 (or for ±∞ and NaN) `v` is returned unchanged, as `trunc` does.
+#[inline]
+pub(crate) fn trunc_int(v: f64) -> f64 {
+    if v.abs() < TWO_POW_52 {
+        (v as i64) as f64
+    } else {
+        v
+    }
+}
+
+/// `v.round()` (half away from zero) up to the sign of a zero result; see [`trunc_int`].
+/// Below 2^52 the fraction `v − trunc(v)` is exact (both share v's binade or the fraction is
+/// v itself), so comparing it with ½ decides the rounding exactly.
+#[inline]
+pub(crate) fn round_int(v: f64) -> f64 {
+    if v.abs() < TWO_POW_52 {
+        let t = (v as i64) as f64;
+        let frac = v - t;
+        if frac >= 0.5 {
+            t + 1.0
+        } else if frac <= -0.5 {
+            t - 1.0
+        } else {
+            t
+        }
+    } else {
+        v
+    }
 }
 
 /// `v as i128` (truncation toward zero, saturating, NaN → 0), exactly, but through the
@@ -409,17 +445,18 @@ pub fn accumulate(layout: &Layout, x: &[f64], y: f64, grid_exp: i32, acc: &mut [
         "grid exponent {grid_exp}"
     );
     let scale = pow2(-grid_exp);
-    let z_len = layout.z_len();
-    let z = |pos: usize| match layout.role(pos) {
-        Role::One => 1.0,
-        Role::Feature(k) => x[k],
-        Role::Target => y,
-    };
+    // z = (1, x, y) or (x, y), on the stack for typical models.
+    let z: smallvec::SmallVec<[f64; 16]> = (0..layout.z_len())
+        .map(|pos| match layout.role(pos) {
+            Role::One => 1.0,
+            Role::Feature(k) => x[k],
+            Role::Target => y,
+        })
+        .collect();
     let mut idx = 0;
-    for i in 0..z_len {
-        let zi = z(i);
-        for j in i..z_len {
-            acc[idx] = acc[idx].saturating_add(product_units(zi, z(j), scale));
+    for (i, &zi) in z.iter().enumerate() {
+        for &zj in &z[i..] {
+            acc[idx] = acc[idx].saturating_add(product_units(zi, zj, scale));
             idx += 1;
         }
     }
@@ -1933,8 +1970,64 @@ mod tests {
         assert_eq!(bound, expected);
     }
 
+    /// Values around every boundary of the fast integer helpers: zero signs, halves, the
+    /// last non-integers below 2^52, 2^52 and 2^63 themselves, infinities and NaN.
+    fn rounding_edges() -> Vec<f64> {
+        let mut v = vec![
+            0.0,
+            -0.0,
+            0.5,
+            -0.5,
+            1.5,
+            -1.5,
+            2.5,
+            -2.5,
+            0.499_999_999_999_999_94,
+            -0.499_999_999_999_999_94,
+            f64::MIN_POSITIVE,
+            f64::MAX,
+            f64::MIN,
+            f64::INFINITY,
+            f64::NEG_INFINITY,
+            f64::NAN,
+        ];
+        for p in [52, 53, 63, 64, 127, 128] {
+            let b = 2f64.powi(p);
+            for x in [b, b.next_down(), b.next_up(), b - 0.5, b + 0.5] {
+                v.push(x);
+                v.push(-x);
+            }
+        }
+        v
+    }
+
+    /// The helpers against the standard library (the reference): `f64::trunc`,
+    /// `f64::round` (half away from zero, IEEE 754 roundTiesToAway) and the saturating
+    /// `as i128` cast. Zeros may differ in sign only.
+    fn assert_rounding_agrees(v: f64) {
+        let same = |a: f64, b: f64| a == b || (a.is_nan() && b.is_nan());
+        assert!(same(trunc_int(v), v.trunc()), "trunc_int({v:e})");
+        assert!(same(round_int(v), v.round()), "round_int({v:e})");
+        assert_eq!(f64_to_i128(v), v as i128, "f64_to_i128({v:e})");
+    }
+
+    #[test]
+    fn fast_rounding_helpers_match_the_standard_library_at_the_edges() {
+        for v in rounding_edges() {
+            assert_rounding_agrees(v);
+        }
+    }
+
     proptest! {
         #![proptest_config(ProptestConfig::with_cases(512))]
+
+        /// Random doubles of every magnitude and random halves: same as the standard library.
+        #[test]
+        fn fast_rounding_helpers_match_the_standard_library(
+            v in prop_oneof![any::<f64>(), -1e6..1e6f64, (-1_000_000i64..1_000_000).prop_map(|k| k as f64 + 0.5)],
+        ) {
+            assert_rounding_agrees(v);
+        }
 
         /// Whatever the input, a clipped event's contribution stays within the sensitivity.
         #[test]
