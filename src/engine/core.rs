@@ -623,6 +623,13 @@ impl Engine {
                 })
                 .collect();
             for g in 0..s.groups.len() {
+                // The group's keys as a record field, built once for all its scopes.
+                let group: BTreeMap<String, String> = s
+                    .groups
+                    .keys_of(g)
+                    .into_iter()
+                    .map(|(f, k)| (f.to_string(), k.to_string()))
+                    .collect();
                 for (scope, (start, end)) in s.scopes.iter().zip(&bounds) {
                     let range = scope.range(leaf);
                     let series = &state.series[si];
@@ -654,12 +661,7 @@ impl Engine {
                         render(s, &est, truth.as_deref(), &self.key, epoch, leaf, g, scope);
                     rec.seq = self.next_seq;
                     self.next_seq += 1;
-                    rec.group = s
-                        .groups
-                        .keys_of(g)
-                        .into_iter()
-                        .map(|(f, k)| (f.to_string(), k.to_string()))
-                        .collect();
+                    rec.group = group.clone();
                     rec.window_start = start.clone();
                     rec.window_end = end.clone();
                     rec.epoch = epoch;

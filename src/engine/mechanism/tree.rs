@@ -33,7 +33,7 @@
 //!
 //! Memory: the mechanism keeps the current forest roots plus every node that ends after
 //! leaf t − M (M = `max_trailing`): at most 2M + 2h nodes. That is enough for every
-//! answerable range (proof at `TreeMechanism::wavelet_difference`).
+//! answerable range (proof at `TreeMechanism::add_wavelet_difference`).
 
 use std::collections::VecDeque;
 
@@ -43,14 +43,18 @@ use super::{
 };
 use crate::engine::dd::Dd;
 
+/// Per-coordinate values of one node: inline for scalar series (counts, sums: one
+/// coordinate), so the 100,000-group case allocates nothing per node.
+type Coords<T> = smallvec::SmallVec<[T; 1]>;
+
 /// What the tree keeps about one released node.
 #[derive(Clone, Debug)]
 struct NodeState {
     /// Noisy node value y_v = exact sum + noise, one per coordinate.
-    noisy: Vec<i128>,
+    noisy: Coords<i128>,
     /// u_v = Σ_{w ⊆ v} 2^{level w}·y_w, one per coordinate (module docs). Kept in
     /// double-double: mathematically an integer, but it can outgrow i128 for extreme inputs.
-    weighted: Vec<Dd>,
+    weighted: Coords<Dd>,
 }
 
 /// The released nodes of one level that are still kept: indices `first_index..`, contiguous
@@ -73,7 +77,7 @@ pub struct TreeMechanism {
     stores: Vec<LevelStore>,
     /// Exact (noise-free) sum of the current forest root at each level, if bit l of the
     /// leaf count is set: the parent's exact sum needs it when the right sibling completes.
-    pending_sums: Vec<Option<Vec<i128>>>,
+    pending_sums: Vec<Option<Coords<i128>>>,
 }
 
 impl TreeMechanism {
@@ -103,7 +107,9 @@ impl TreeMechanism {
         store.nodes.get(usize::try_from(offset).ok()?)
     }
 
-    /// u_left(b) − u_right(b) for the internal node b = (level, index), per coordinate.
+    /// Adds (u_left(b) − u_right(b))·ratio to `value`, coordinate by coordinate, for the
+    /// internal node b = (level, index), without materialising the difference (this runs
+    /// for every term of every estimate).
     ///
     /// Why the needed nodes are kept. Every wavelet node b with c·ψ_b ≠ 0 overlaps the range
     /// partially, so it contains an end e of the range and a leaf outside it. If that end is
@@ -112,16 +118,15 @@ impl TreeMechanism {
     /// whole [0, t − 1] (which needs only roots), b contains an end e ≥ t − M, and b ends after
     /// e ≥ t − M, so b is kept; so is its right child, which contains e or lies after it. The
     /// left child may be gone, but u_left = u_b − 2^j·y_b − u_right recovers it.
-    fn wavelet_difference(&self, level: u32, index: u64) -> Vec<Dd> {
+    fn add_wavelet_difference(&self, level: u32, index: u64, ratio: Dd, value: &mut [Dd]) {
         let right = self.node(level - 1, 2 * index + 1);
         let left = self.node(level - 1, 2 * index);
         match (left, right) {
-            (Some(left), Some(right)) => left
-                .weighted
-                .iter()
-                .zip(&right.weighted)
-                .map(|(&l, &r)| l - r)
-                .collect(),
+            (Some(left), Some(right)) => {
+                for ((v, &l), &r) in value.iter_mut().zip(&left.weighted).zip(&right.weighted) {
+                    *v = *v + (l - r) * ratio;
+                }
+            }
             _ => {
                 // Invariant (proof above): the node and its right child are kept for every
                 // answerable range, and `estimate` checks answerability first.
@@ -130,12 +135,14 @@ impl TreeMechanism {
                     .expect("wavelet node of an answerable range is retained");
                 let right = right.expect("right child of an answerable range's node is retained");
                 let scale = (1u64 << level) as f64;
-                node.weighted
-                    .iter()
+                for (((v, &u), &y), &r) in value
+                    .iter_mut()
+                    .zip(&node.weighted)
                     .zip(&node.noisy)
                     .zip(&right.weighted)
-                    .map(|((&u, &y), &r)| u - Dd::from_i128(y) * scale - r - r)
-                    .collect()
+                {
+                    *v = *v + (u - Dd::from_i128(y) * scale - r - r) * ratio;
+                }
             }
         }
     }
@@ -264,10 +271,10 @@ impl ContinualMechanism for TreeMechanism {
             self.dim,
             "leaf has the wrong number of coordinates"
         );
-        let mut exact_sum = x.to_vec();
+        let mut exact_sum: Coords<i128> = x.iter().copied().collect();
         let mut level = 0u32;
         let mut index = u64::from(self.n_leaves);
-        let mut fresh = vec![0i128; self.dim];
+        let mut fresh: Coords<i128> = smallvec::smallvec![0i128; self.dim];
         loop {
             // Node (level, index) completes now: its last leaf is the one being pushed, and it
             // lies inside [0, T) because that leaf does.
@@ -280,13 +287,14 @@ impl ContinualMechanism for TreeMechanism {
             );
             // Saturating: grid sums stay far below 2^127 for any sane grid (the stats module
             // bounds leaf values); saturation rather than wrap-around if not.
-            let noisy: Vec<i128> = exact_sum
+            let noisy: Coords<i128> = exact_sum
                 .iter()
                 .zip(&fresh)
                 .map(|(&s, &z)| s.saturating_add(z))
                 .collect();
             let scale = (1u64 << level) as f64;
-            let mut weighted: Vec<Dd> = noisy.iter().map(|&y| Dd::from_i128(y) * scale).collect();
+            let mut weighted: Coords<Dd> =
+                noisy.iter().map(|&y| Dd::from_i128(y) * scale).collect();
             if level > 0 {
                 // Both children are kept: the right one was stored in this very push, and the
                 // left one has been a forest root (never pruned) since it completed.
@@ -332,17 +340,19 @@ impl ContinualMechanism for TreeMechanism {
         for_each_term(self.n_leaves, range, |term| {
             // Both are small exact integers; one double-double division per term.
             let ratio = Dd::from_f64(term.coefficient()) / Dd::from_f64(term.denominator());
-            let parts = match term {
-                Term::Root { level, index, .. } => self
-                    .node(level, index)
-                    // Forest roots are never pruned.
-                    .expect("forest root is retained")
-                    .weighted
-                    .clone(),
-                Term::Wavelet { level, index, .. } => self.wavelet_difference(level, index),
-            };
-            for (v, part) in value.iter_mut().zip(parts) {
-                *v = *v + part * ratio;
+            match term {
+                Term::Root { level, index, .. } => {
+                    let root = self
+                        .node(level, index)
+                        // Forest roots are never pruned.
+                        .expect("forest root is retained");
+                    for (v, &part) in value.iter_mut().zip(&root.weighted) {
+                        *v = *v + part * ratio;
+                    }
+                }
+                Term::Wavelet { level, index, .. } => {
+                    self.add_wavelet_difference(level, index, ratio, &mut value);
+                }
             }
         });
         Estimate {
