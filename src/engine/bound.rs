@@ -33,13 +33,13 @@ const END: u32 = u32::MAX;
 
 /// One retained event with its priority, linked to its unit's next retained event.
 #[derive(Debug)]
-struct Slot {
+struct Slot<T> {
     priority: u64,
     /// Next slot of the same unit, or [`END`].
     next: u32,
     /// Index of the slot's unit in [`WindowSlots::units`].
     unit: u32,
-    event: Event,
+    event: T,
 }
 
 /// A unit with events in an open window: its hash and the head of its chain of slots.
@@ -55,14 +55,24 @@ struct UnitSlots {
 /// arena. The hash table only maps a unit to its index in `units` (16-byte entries, cheap to
 /// grow), events are appended to the arena in arrival order, and closing walks `units` and
 /// then the arena front to back, so memory is read sequentially rather than in hash order.
-#[derive(Debug, Default)]
-struct WindowSlots {
+#[derive(Debug)]
+struct WindowSlots<T> {
     index: UnitMap<u32>,
     units: Vec<UnitSlots>,
-    events: Vec<Slot>,
+    events: Vec<Slot<T>>,
 }
 
-impl WindowSlots {
+impl<T> Default for WindowSlots<T> {
+    fn default() -> Self {
+        WindowSlots {
+            index: UnitMap::default(),
+            units: Vec::new(),
+            events: Vec::new(),
+        }
+    }
+}
+
+impl<T> WindowSlots<T> {
     fn clear(&mut self) {
         self.index.clear();
         self.units.clear();
@@ -102,32 +112,34 @@ impl Hasher for UnitKeyHasher {
 /// A map keyed by unit hash (see [`UnitKeyHasher`]).
 pub type UnitMap<V> = HashMap<u64, V, BuildHasherDefault<UnitKeyHasher>>;
 
-/// The per-unit bounding stage of the engine.
+/// The per-unit bounding stage of the engine. `T` is what is retained per event: the
+/// engine keeps each event's precomputed contribution (`contribution`); the decisions only
+/// ever look at units, windows and priorities.
 #[derive(Debug)]
-pub struct Bounder {
+pub struct Bounder<T = Event> {
     max_events_per_window: usize,
     max_windows_per_epoch: u32,
-    open: BTreeMap<i64, WindowSlots>,
+    open: BTreeMap<i64, WindowSlots<T>>,
     windows_used: UnitMap<u32>,
     /// The last closed window's table and arena, emptied, for the next window to open:
     /// steady traffic then neither regrows (and rehashes) a table from empty nor touches
     /// fresh pages every window.
-    spare: Option<WindowSlots>,
+    spare: Option<WindowSlots<T>>,
     epoch: Option<u64>,
 }
 
 /// What closing a window produced.
-#[derive(Debug, Default)]
-pub struct ClosedWindow {
+#[derive(Debug)]
+pub struct ClosedWindow<T = Event> {
     /// Events that survive both bounds.
-    pub kept: Vec<Event>,
+    pub kept: Vec<T>,
     /// Events dropped because their unit had used up its windows for the epoch.
     pub dropped_by_window_cap: u64,
 }
 
-impl Bounder {
+impl<T> Bounder<T> {
     /// A bounder keeping `k` events per unit per window and `m` windows per unit per epoch.
-    pub fn new(max_events_per_window: u32, max_windows_per_epoch: u32) -> Bounder {
+    pub fn new(max_events_per_window: u32, max_windows_per_epoch: u32) -> Bounder<T> {
         Bounder {
             max_events_per_window: max_events_per_window as usize,
             max_windows_per_epoch,
@@ -141,7 +153,7 @@ impl Bounder {
     /// Offers an event of `unit` for window `window_idx`. Returns the number of events
     /// dropped by the per-window bound as a result (0 or 1): either this event or the
     /// retained event with the largest priority.
-    pub fn offer(&mut self, window_idx: i64, unit: u64, priority: u64, event: Event) -> u64 {
+    pub fn offer(&mut self, window_idx: i64, unit: u64, priority: u64, event: T) -> u64 {
         let k = self.max_events_per_window;
         let spare = &mut self.spare;
         let window = self
@@ -203,7 +215,10 @@ impl Bounder {
 
     /// Closes window `window_idx`, which belongs to `epoch`; windows must be closed in
     /// increasing order. Applies the per-epoch window cap.
-    pub fn close(&mut self, window_idx: i64, epoch: u64) -> ClosedWindow {
+    pub fn close(&mut self, window_idx: i64, epoch: u64) -> ClosedWindow<T>
+    where
+        T: Clone,
+    {
         let mut kept = Vec::new();
         let dropped_by_window_cap = self.close_with(window_idx, epoch, |ev| kept.push(ev.clone()));
         ClosedWindow {
@@ -214,12 +229,7 @@ impl Bounder {
 
     /// [`Bounder::close`] without collecting: hands every surviving event to `keep` (in no
     /// particular order) and returns the number dropped by the per-epoch window cap.
-    pub fn close_with(
-        &mut self,
-        window_idx: i64,
-        epoch: u64,
-        mut keep: impl FnMut(&Event),
-    ) -> u64 {
+    pub fn close_with(&mut self, window_idx: i64, epoch: u64, mut keep: impl FnMut(&T)) -> u64 {
         if self.epoch != Some(epoch) {
             self.windows_used.clear();
             self.windows_used.shrink_to_fit();

@@ -19,15 +19,14 @@ use std::sync::Arc;
 
 use crate::config::Config;
 use crate::engine::bound::Bounder;
+use crate::engine::contribution::{Contribution, Contributor};
 use crate::engine::dd::Dd;
-use crate::engine::event::{Event, LineParser, Numbers, RejectReason, Rejection, Schema};
+use crate::engine::event::{Event, LineParser, RejectReason, Rejection, Schema};
 use crate::engine::ledger::{BudgetError, EpochCharge, Ledger};
 use crate::engine::linear;
 use crate::engine::mechanism::{self, ContinualMechanism, NodeAddr, NodeNoise};
 use crate::engine::noise::{self, KeyedHash64, NoiseId, NoiseKey};
-use crate::engine::plan::{
-    ComponentPlan, ComponentRole, Plan, PlanError, PrivacyLevel, Scope, StatPlan,
-};
+use crate::engine::plan::{ComponentRole, Plan, PlanError, PrivacyLevel, Scope, StatPlan};
 use crate::engine::release::{self, Guarantee, Release, Statistics};
 use crate::engine::time::Millis;
 
@@ -180,9 +179,10 @@ pub struct Engine {
     next_close: i64,
     max_event_time: Option<Millis>,
     open: BTreeMap<i64, WindowAgg>,
-    bounder: Option<Bounder>,
-    /// Per stat: for each stat group field, parser-domain index → stat key index.
-    key_maps: Vec<Vec<Vec<Option<u32>>>>,
+    bounder: Option<Bounder<Contribution>>,
+    /// Turns events into their exact per-statistic contributions; shared with
+    /// [`LineDecoder`]s so parse workers can do that work too.
+    contributor: Arc<Contributor>,
     epoch: Option<EpochState>,
     ledger: Ledger,
     halted: Option<BudgetError>,
@@ -217,23 +217,7 @@ impl Engine {
             max_line_bytes: config.input.max_line_bytes,
         };
         let parser = LineParser::new(schema).map_err(|e| EngineError::Schema(e.to_string()))?;
-        let key_maps = plan
-            .stats
-            .iter()
-            .map(|s| {
-                s.groups
-                    .fields
-                    .iter()
-                    .map(|(_, keys, cat)| {
-                        plan.categories[*cat]
-                            .1
-                            .iter()
-                            .map(|d| keys.iter().position(|k| k == d).map(|i| i as u32))
-                            .collect()
-                    })
-                    .collect()
-            })
-            .collect();
+        let contributor = Arc::new(Contributor::new(&plan));
         let (bounder, lifetime, unit) = match &plan.level {
             PrivacyLevel::Event => (None, None, None),
             PrivacyLevel::Unit {
@@ -282,7 +266,7 @@ impl Engine {
             max_event_time: None,
             open: BTreeMap::new(),
             bounder,
-            key_maps,
+            contributor,
             epoch: None,
             halted: None,
             counters: Counters::default(),
@@ -314,7 +298,7 @@ impl Engine {
     }
 
     /// Bounding state, for memory reporting (unit level only).
-    pub fn bounder(&self) -> Option<&Bounder> {
+    pub fn bounder(&self) -> Option<&Bounder<Contribution>> {
         self.bounder.as_ref()
     }
 
@@ -369,7 +353,7 @@ impl Engine {
         LineDecoder {
             parser: Arc::clone(&self.parser),
             hashers: self.hashers.clone(),
-            bounding: self.bounder.is_some(),
+            contributor: Arc::clone(&self.contributor),
         }
     }
 
@@ -388,49 +372,67 @@ impl Engine {
 
     /// Handles one parsed event.
     pub fn handle_event(&mut self, ev: Event) {
-        self.admit(ev, None);
+        let Some(w) = self.accept(ev.time) else {
+            return;
+        };
+        let keyed = ev
+            .unit
+            .map(|unit| (unit, event_priority(&self.hashers, unit, &ev)));
+        let contribution = self.contributor.contribution(&ev);
+        self.place(w, keyed, contribution);
     }
 
     /// Handles a line prepared by [`LineDecoder::prepare`] of this engine's decoder:
     /// `handle_line(l)` is exactly `handle_prepared(decoder.prepare(l))`.
     pub fn handle_prepared(&mut self, prepared: Prepared) {
-        match prepared.parsed {
-            Ok(ev) => self.admit(ev, prepared.priority),
+        match prepared.outcome {
+            Ok(event) => {
+                if let Some(w) = self.accept(event.time) {
+                    self.place(w, event.keyed, event.contribution);
+                }
+            }
             Err(rej) => self.reject(rej.reason.label()),
         }
     }
 
-    /// [`Engine::handle_event`] with the event's bounding priority when a parse worker
-    /// already computed it (`None`: compute it here, if bounding needs it).
-    fn admit(&mut self, ev: Event, priority: Option<u64>) {
-        let w = self.window_of(ev.time);
+    /// The window of an event at `time`, or `None` when the event is late or implausibly
+    /// far ahead (counted here). An accepted event is counted and moves the largest event
+    /// time; the caller then places it with [`Engine::place`].
+    fn accept(&mut self, time: Millis) -> Option<i64> {
+        let w = self.window_of(time);
         let origin = *self.origin.get_or_insert(w);
         if self.next_close < origin {
             self.next_close = origin;
         }
         if w < self.next_close {
             self.counters.late += 1;
-            return;
+            return None;
         }
         // An event more than one epoch (plus the lateness) ahead of the oldest open window
         // would force closing a whole epoch of empty windows: almost always a broken clock.
         let horizon = i64::from(self.plan.epoch_windows) + self.lateness_ms / self.window_ms + 1;
         if w - self.next_close > horizon {
             self.reject(REJECT_TIME_JUMP);
-            return;
+            return None;
         }
         self.counters.accepted += 1;
-        self.max_event_time = Some(self.max_event_time.map_or(ev.time, |m| m.max(ev.time)));
-        match (&mut self.bounder, ev.unit) {
-            (Some(b), Some(unit)) => {
-                let prio = priority.unwrap_or_else(|| event_priority(&self.hashers, unit, &ev));
-                self.counters.dropped_event_bound += b.offer(w, unit, prio, ev);
+        self.max_event_time = Some(self.max_event_time.map_or(time, |m| m.max(time)));
+        Some(w)
+    }
+
+    /// Puts an accepted event's contribution into window `w`: through the bounder when
+    /// the engine bounds units (`keyed`: the unit hash and the event's bounding priority),
+    /// straight into the window's aggregate otherwise. Then closes what the watermark
+    /// passed.
+    fn place(&mut self, w: i64, keyed: Option<(u64, u64)>, contribution: Contribution) {
+        match (&mut self.bounder, keyed) {
+            (Some(b), Some((unit, priority))) => {
+                self.counters.dropped_event_bound += b.offer(w, unit, priority, contribution);
             }
             _ => {
                 let plan = &self.plan;
-                let key_maps = &self.key_maps;
                 let agg = self.open.entry(w).or_insert_with(|| WindowAgg::empty(plan));
-                agg.add(plan, key_maps, &ev);
+                self.contributor.add(&contribution, &mut agg.values);
             }
         }
         self.advance_watermark();
@@ -503,9 +505,9 @@ impl Engine {
             .remove(&w)
             .unwrap_or_else(|| WindowAgg::empty(&self.plan));
         if let Some(b) = &mut self.bounder {
-            let (plan, key_maps) = (&self.plan, &self.key_maps);
+            let contributor = &self.contributor;
             self.counters.dropped_window_bound +=
-                b.close_with(w, epoch, |ev| agg.add(plan, key_maps, ev));
+                b.close_with(w, epoch, |c| contributor.add(c, &mut agg.values));
         }
 
         if self
@@ -688,25 +690,33 @@ impl Engine {
 pub struct LineDecoder {
     parser: Arc<LineParser>,
     hashers: EventHashers,
-    /// The engine bounds contributions per unit, so [`LineDecoder::prepare`] computes the
-    /// bounding priority too.
-    bounding: bool,
+    /// The engine's contributor: [`LineDecoder::prepare`] computes each event's
+    /// contributions, so parse workers take that work off the engine thread.
+    contributor: Arc<Contributor>,
 }
 
 /// A line made ready off the engine thread by [`LineDecoder::prepare`], for
-/// [`Engine::handle_prepared`]: the parser's verdict and, for an event of a unit under
-/// contribution bounding, its bounding priority. Only `prepare` builds one, so the priority
-/// is always the engine's own keyed hash of the event.
+/// [`Engine::handle_prepared`]: the parser's rejection, or what the engine needs of the
+/// event. Only `prepare` builds one, so the priority and the contribution are always the
+/// engine's own.
 #[derive(Clone, Debug, PartialEq)]
 pub struct Prepared {
-    parsed: Result<Event, Rejection>,
-    priority: Option<u64>,
+    outcome: Result<PreparedEvent, Rejection>,
+}
+
+/// What the engine needs of an accepted line.
+#[derive(Clone, Debug, PartialEq)]
+struct PreparedEvent {
+    time: Millis,
+    /// The unit hash and the event's bounding priority (events with a unit).
+    keyed: Option<(u64, u64)>,
+    contribution: Contribution,
 }
 
 impl Prepared {
-    /// The parser's verdict on the line.
-    pub fn parsed(&self) -> &Result<Event, Rejection> {
-        &self.parsed
+    /// The parser's rejection of the line, if it rejected it.
+    pub fn rejection(&self) -> Option<&Rejection> {
+        self.outcome.as_ref().err()
     }
 }
 
@@ -716,17 +726,19 @@ impl LineDecoder {
         decode_line(&self.parser, &self.hashers, line)
     }
 
-    /// [`LineDecoder::decode`] plus the event's bounding priority when the engine bounds
-    /// contributions. Both are pure functions of the line and the key, so parse workers
-    /// compute them and the engine thread only admits the event. Use the result with the
-    /// engine that made this decoder.
+    /// [`LineDecoder::decode`] plus, for an event, its bounding priority (when it has a
+    /// unit) and its contribution to every statistic. All are pure functions of the line
+    /// and the key, so parse workers compute them and the engine thread only admits the
+    /// event. Use the result with the engine that made this decoder.
     pub fn prepare(&self, line: &[u8]) -> Prepared {
-        let parsed = self.decode(line);
-        let priority = match (&parsed, self.bounding) {
-            (Ok(ev), true) => ev.unit.map(|unit| event_priority(&self.hashers, unit, ev)),
-            _ => None,
-        };
-        Prepared { parsed, priority }
+        let outcome = self.decode(line).map(|ev| PreparedEvent {
+            time: ev.time,
+            keyed: ev
+                .unit
+                .map(|unit| (unit, event_priority(&self.hashers, unit, &ev))),
+            contribution: self.contributor.contribution(&ev),
+        });
+        Prepared { outcome }
     }
 
     /// The engine's parser, for callers that bring their own unit hash (benchmarks).
@@ -793,56 +805,6 @@ impl WindowAgg {
                         .collect()
                 })
                 .collect(),
-        }
-    }
-
-    /// Adds one event's exact grid contribution to every statistic.
-    fn add(&mut self, plan: &Plan, key_maps: &[Vec<Vec<Option<u32>>>], ev: &Event) {
-        'stats: for (si, s) in plan.stats.iter().enumerate() {
-            let mut g = 0usize;
-            for (fi, (_, keys, cat)) in s.groups.fields.iter().enumerate() {
-                let domain_idx = ev.categories[*cat] as usize;
-                match key_maps[si][fi].get(domain_idx).copied().flatten() {
-                    Some(k) => g = g * keys.len() + k as usize,
-                    // The key is declared for another statistic only: not part of this one.
-                    None => continue 'stats,
-                }
-            }
-            for (ci, c) in s.components.iter().enumerate() {
-                let slot = &mut self.values[si][ci][g * c.dim..(g + 1) * c.dim];
-                contribute(c, ev, slot);
-            }
-        }
-    }
-}
-
-/// One event's contribution on the component's grid (see `plan` for the sensitivities).
-fn contribute(c: &ComponentPlan, ev: &Event, slot: &mut [i128]) {
-    let q = c.quantum();
-    match &c.role {
-        ComponentRole::Count => slot[0] += 1i128 << (-c.grid_exp),
-        ComponentRole::Sum { field, lo, hi } => {
-            slot[0] += linear::f64_to_i128(linear::round_int(ev.numbers[*field].clamp(*lo, *hi) / q));
-        }
-        ComponentRole::CentredSum { field, lo, hi } => {
-            let mid = (lo + hi) / 2.0;
-            slot[0] += linear::f64_to_i128(linear::round_int(
-                (ev.numbers[*field].clamp(*lo, *hi) - mid) / q,
-            ));
-        }
-        ComponentRole::Moments {
-            features,
-            target,
-            layout,
-            units,
-            ..
-        } => {
-            // Clip in value units, then centre and normalise (see `plan::MomentUnits`) so the
-            // packed moments have comparable scales.
-            let mut x: Numbers = features.iter().map(|&i| ev.numbers[i]).collect();
-            let mut y = ev.numbers[*target];
-            units.normalise(&mut x, &mut y);
-            linear::accumulate(layout, &x, y, c.grid_exp, slot);
         }
     }
 }

@@ -1233,8 +1233,9 @@ mod tests {
 
     #[test]
     fn categories_must_be_strings_in_their_domain() {
-        let zone =
-            |raw: &str| parse(with_field("zone", Some(raw)).as_bytes()).map(|e| e.categories.to_vec());
+        let zone = |raw: &str| {
+            parse(with_field("zone", Some(raw)).as_bytes()).map(|e| e.categories.to_vec())
+        };
         assert_eq!(zone(r#""riverside""#), Ok(vec![3, 0]));
         // JSON escapes are decoded before the lookup: \u006f is "o".
         assert_eq!(zone(r#""harb\u006fur""#), Ok(vec![0, 0]));

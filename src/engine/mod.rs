@@ -7,6 +7,7 @@
 
 pub mod accounting;
 pub mod bound;
+pub mod contribution;
 pub mod core;
 pub mod dd;
 pub mod event;

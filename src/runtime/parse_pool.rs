@@ -371,8 +371,8 @@ mod tests {
             "the input must span several chunks"
         );
         let expected = sequential(&input, &decoder);
-        assert!(expected.iter().any(|p| p.parsed().is_err()));
-        assert!(expected.iter().any(|p| p.parsed().is_ok()));
+        assert!(expected.iter().any(|p| p.rejection().is_some()));
+        assert!(expected.iter().any(|p| p.rejection().is_none()));
         for threads in [1, 2, 3] {
             for step in [usize::MAX, 4093] {
                 assert_eq!(

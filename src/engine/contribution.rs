@@ -1,0 +1,350 @@
+//! One event's exact contribution to every statistic, on the statistics' grids, computed
+//! as soon as the event is parsed.
+//!
+//! What an event adds to a window aggregate depends on the event and the plan only (its
+//! group in each statistic, its clamped values rounded to each component's grid, its
+//! clipped moment vector): not on the window, on other events or on bounding. So the work
+//! can run wherever the line is parsed, including `scrim replay`'s parse workers, and the
+//! engine thread only adds integer vectors. Contribution bounding keeps or drops whole
+//! contributions, exactly as it kept or dropped whole events.
+//!
+//! The values are exactly those the aggregation has always used (same clamps, same grid
+//! rounding, same [`linear::accumulate`]); adding them to a window is integer addition, so
+//! the order of events never matters and releases are identical whichever thread computes
+//! them. Sensitivities and their derivations are in `plan` and `linear`.
+
+use smallvec::SmallVec;
+
+use crate::engine::event::{Event, Numbers};
+use crate::engine::linear;
+use crate::engine::plan::{ComponentPlan, ComponentRole, Plan};
+
+/// Marks a statistic the event is not part of: its category value is declared for another
+/// statistic only. Never a group index ([`GroupSpace`](crate::engine::plan::GroupSpace)
+/// sizes are far below `u32::MAX`: configuration caps keys per field).
+const NOT_PART: u32 = u32::MAX;
+
+/// One event's contribution: per statistic its group (or [`NOT_PART`]), and per component,
+/// in plan order, its grid values (`dim` each, zeros for statistics it is not part of).
+///
+/// Grid values are i128 (the aggregates' type), but one event's values fit i64 for any
+/// realistic grid (the grids leave 2^40 or so per event, see `linear::default_grid_exp`),
+/// so they are kept as i64, inline for plans up to 16 coordinates and 8 statistics (the
+/// demo has 15 and 5): retained events are then a third of the size, which matters for
+/// the bounding arena and for handing events between threads. A contribution with any
+/// value outside i64 keeps all its values in `wide` instead; nothing is ever truncated.
+#[derive(Clone, Debug, PartialEq, Eq)]
+pub struct Contribution {
+    groups: SmallVec<[u32; 6]>,
+    narrow: SmallVec<[i64; 16]>,
+    wide: Option<Box<[i128]>>,
+}
+
+/// How one statistic's group is found and where its components' values go.
+#[derive(Clone, Debug)]
+struct StatLayout {
+    /// Per group field: the parser's category index, its domain index → key index map,
+    /// and the number of keys (mixed radix, first field most significant).
+    fields: Vec<(usize, Vec<Option<u32>>, usize)>,
+    /// Per component: its plan and the offset of its values in [`Contribution::values`].
+    components: Vec<(ComponentPlan, usize)>,
+}
+
+/// Computes [`Contribution`]s for one plan; built once, shared by reference (or `Arc`)
+/// with parse workers.
+#[derive(Clone, Debug)]
+pub struct Contributor {
+    stats: Vec<StatLayout>,
+    width: usize,
+}
+
+impl Contributor {
+    /// The contributor of `plan`.
+    pub fn new(plan: &Plan) -> Contributor {
+        let mut width = 0;
+        let stats = plan
+            .stats
+            .iter()
+            .map(|s| StatLayout {
+                fields: s
+                    .groups
+                    .fields
+                    .iter()
+                    .map(|(_, keys, cat)| {
+                        let map = plan.categories[*cat]
+                            .1
+                            .iter()
+                            .map(|d| keys.iter().position(|k| k == d).map(|i| i as u32))
+                            .collect();
+                        (*cat, map, keys.len())
+                    })
+                    .collect(),
+                components: s
+                    .components
+                    .iter()
+                    .map(|c| {
+                        let offset = width;
+                        width += c.dim;
+                        (c.clone(), offset)
+                    })
+                    .collect(),
+            })
+            .collect();
+        Contributor { stats, width }
+    }
+
+    /// The contribution of `ev` (an event parsed with this plan's schema).
+    pub fn contribution(&self, ev: &Event) -> Contribution {
+        let mut groups = SmallVec::with_capacity(self.stats.len());
+        let mut values: SmallVec<[i128; 16]> = smallvec::smallvec![0i128; self.width];
+        for s in &self.stats {
+            let group = group_of(&s.fields, ev);
+            groups.push(group.unwrap_or(NOT_PART));
+            if group.is_none() {
+                continue;
+            }
+            for (c, offset) in &s.components {
+                contribute(c, ev, &mut values[*offset..*offset + c.dim]);
+            }
+        }
+        let narrow: Option<SmallVec<[i64; 16]>> =
+            values.iter().map(|&v| i64::try_from(v).ok()).collect();
+        match narrow {
+            Some(narrow) => Contribution {
+                groups,
+                narrow,
+                wide: None,
+            },
+            None => Contribution {
+                groups,
+                narrow: SmallVec::new(),
+                wide: Some(values.into_iter().collect()),
+            },
+        }
+    }
+
+    /// Adds `contribution` to a window aggregate laid out as `[stat][component]` → flat
+    /// `groups × dim` vectors (the engine's window aggregate). Saturating, like the moment
+    /// accumulation: a sum can never wrap around (see `linear::accumulate`).
+    pub fn add(&self, contribution: &Contribution, aggregate: &mut [Vec<Vec<i128>>]) {
+        for ((s, &group), per_component) in self
+            .stats
+            .iter()
+            .zip(&contribution.groups)
+            .zip(aggregate.iter_mut())
+        {
+            if group == NOT_PART {
+                continue;
+            }
+            let g = group as usize;
+            for ((c, offset), slot) in s.components.iter().zip(per_component.iter_mut()) {
+                let to = &mut slot[g * c.dim..(g + 1) * c.dim];
+                let range = *offset..*offset + c.dim;
+                match &contribution.wide {
+                    None => {
+                        for (acc, v) in to.iter_mut().zip(&contribution.narrow[range]) {
+                            *acc = acc.saturating_add(i128::from(*v));
+                        }
+                    }
+                    Some(wide) => {
+                        for (acc, v) in to.iter_mut().zip(&wide[range]) {
+                            *acc = acc.saturating_add(*v);
+                        }
+                    }
+                }
+            }
+        }
+    }
+}
+
+/// The event's group index in one statistic, or `None` when one of its category values
+/// is declared for another statistic only.
+fn group_of(fields: &[(usize, Vec<Option<u32>>, usize)], ev: &Event) -> Option<u32> {
+    let mut g = 0usize;
+    for (cat, map, n_keys) in fields {
+        let domain_idx = ev.categories[*cat] as usize;
+        let k = map.get(domain_idx).copied().flatten()?;
+        g = g * n_keys + k as usize;
+    }
+    u32::try_from(g).ok()
+}
+
+/// One event's contribution on the component's grid (see `plan` for the sensitivities),
+/// added to `slot` (zeros when called from [`Contributor::contribution`]).
+fn contribute(c: &ComponentPlan, ev: &Event, slot: &mut [i128]) {
+    let q = c.quantum();
+    match &c.role {
+        ComponentRole::Count => slot[0] += 1i128 << (-c.grid_exp),
+        ComponentRole::Sum { field, lo, hi } => {
+            slot[0] +=
+                linear::f64_to_i128(linear::round_int(ev.numbers[*field].clamp(*lo, *hi) / q));
+        }
+        ComponentRole::CentredSum { field, lo, hi } => {
+            let mid = (lo + hi) / 2.0;
+            slot[0] += linear::f64_to_i128(linear::round_int(
+                (ev.numbers[*field].clamp(*lo, *hi) - mid) / q,
+            ));
+        }
+        ComponentRole::Moments {
+            features,
+            target,
+            layout,
+            units,
+            ..
+        } => {
+            // Clip in value units, then centre and normalise (see `plan::MomentUnits`) so the
+            // packed moments have comparable scales.
+            let mut x: Numbers = features.iter().map(|&i| ev.numbers[i]).collect();
+            let mut y = ev.numbers[*target];
+            units.normalise(&mut x, &mut y);
+            linear::accumulate(layout, &x, y, c.grid_exp, slot);
+        }
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use crate::config::Config;
+    use crate::engine::plan::Plan;
+    use crate::engine::time::Millis;
+
+    /// Each value against its definition (plan docs): a count adds one event, 2^-e grid
+    /// units; a sum adds round(clamp(x)/q) (half away from zero, `f64::round`); a mean's
+    /// centred sum adds round((clamp(x) − mid)/q); moments are `linear::accumulate` of the
+    /// normalised vector; the group is the mixed-radix index of the event's keys.
+    #[test]
+    fn contributions_follow_their_definitions() {
+        let config = Config::from_toml_str(crate::app::DEMO_CONFIG).expect("demo config");
+        let plan = Plan::new(&config).expect("demo plan");
+        let contributor = Contributor::new(&plan);
+        let index = |names: &[String], name: &str| names.iter().position(|n| n == name).unwrap();
+        let cat_names: Vec<String> = plan.categories.iter().map(|(n, _)| n.clone()).collect();
+        let value_of = |field: &str, key: &str| {
+            let (_, domain) = &plan.categories[index(&cat_names, field)];
+            domain.iter().position(|d| d == key).unwrap() as u32
+        };
+        let mut categories = crate::engine::event::Categories::new();
+        categories.resize(plan.categories.len(), 0);
+        categories[index(&cat_names, "zone")] = value_of("zone", "riverside");
+        categories[index(&cat_names, "mode")] = value_of("mode", "ferry");
+        let mut numbers = Numbers::new();
+        numbers.resize(plan.numbers.len(), 0.0);
+        numbers[index(&plan.numbers, "fare_cents")] = 1234.5; // above the range: clamped
+        numbers[index(&plan.numbers, "trip_minutes")] = 17.3;
+        numbers[index(&plan.numbers, "trip_km")] = 6.2;
+        numbers[index(&plan.numbers, "transfers")] = 1.0;
+        let ev = Event {
+            time: Millis(0),
+            unit: Some(1),
+            categories,
+            numbers: numbers.clone(),
+        };
+        let c = contributor.contribution(&ev);
+        assert!(c.wide.is_none(), "demo grids fit i64");
+        let mut offset = 0;
+        for (s, &group) in plan.stats.iter().zip(&c.groups) {
+            let want_group = match s.name.as_str() {
+                "taps_by_zone" => 3, // riverside in the stat's key list
+                "taps_by_mode" => 1, // ferry
+                _ => 0,
+            };
+            assert_eq!(group, want_group, "{}", s.name);
+            for comp in &s.components {
+                let got = &c.narrow[offset..offset + comp.dim];
+                let q = 2f64.powi(comp.grid_exp);
+                let want: Vec<i128> = match &comp.role {
+                    ComponentRole::Count => vec![1i128 << -comp.grid_exp],
+                    ComponentRole::Sum { field, lo, hi } => {
+                        vec![(numbers[*field].clamp(*lo, *hi) / q).round() as i128]
+                    }
+                    ComponentRole::CentredSum { field, lo, hi } => {
+                        let mid = (lo + hi) / 2.0;
+                        vec![((numbers[*field].clamp(*lo, *hi) - mid) / q).round() as i128]
+                    }
+                    ComponentRole::Moments {
+                        features,
+                        target,
+                        layout,
+                        units,
+                        ..
+                    } => {
+                        let mut x: Vec<f64> = features.iter().map(|&i| numbers[i]).collect();
+                        let mut y = numbers[*target];
+                        units.normalise(&mut x, &mut y);
+                        let mut acc = vec![0i128; comp.dim];
+                        linear::accumulate(layout, &x, y, comp.grid_exp, &mut acc);
+                        acc
+                    }
+                };
+                let got: Vec<i128> = got.iter().map(|&v| i128::from(v)).collect();
+                assert_eq!(got, want, "{}", s.name);
+                offset += comp.dim;
+            }
+        }
+        assert_eq!(offset, c.narrow.len());
+
+        // Adding to an aggregate puts exactly these values at the group's slot.
+        let mut agg: Vec<Vec<Vec<i128>>> = plan
+            .stats
+            .iter()
+            .map(|s| {
+                s.components
+                    .iter()
+                    .map(|comp| vec![0i128; s.groups.len() * comp.dim])
+                    .collect()
+            })
+            .collect();
+        contributor.add(&c, &mut agg);
+        contributor.add(&c, &mut agg);
+        let zone = plan
+            .stats
+            .iter()
+            .position(|s| s.name == "taps_by_zone")
+            .unwrap();
+        let count = 1i128 << -plan.stats[zone].components[0].grid_exp;
+        assert_eq!(agg[zone][0], vec![0, 0, 0, 2 * count, 0]);
+    }
+
+    /// A category value declared for another statistic only leaves that statistic alone.
+    #[test]
+    fn values_outside_a_statistics_keys_are_not_part_of_it() {
+        let toml = r#"
+[input]
+time_field = "ts"
+[window]
+length = "1h"
+[privacy]
+rho_per_epoch = 1.0
+delta = 1e-9
+epoch_windows = 4
+[[stats]]
+name = "some"
+kind = "count"
+group_by = ["zone"]
+[stats.keys]
+zone = ["a"]
+[[stats]]
+name = "all"
+kind = "count"
+group_by = ["zone"]
+[stats.keys]
+zone = ["a", "b"]
+"#;
+        let plan = Plan::new(&Config::from_toml_str(toml).expect("config")).expect("plan");
+        let contributor = Contributor::new(&plan);
+        let b = plan.categories[0].1.iter().position(|d| d == "b").unwrap() as u32;
+        let ev = Event {
+            time: Millis(0),
+            unit: None,
+            categories: [b].into_iter().collect(),
+            numbers: Numbers::new(),
+        };
+        let c = contributor.contribution(&ev);
+        assert_eq!(c.groups.as_slice(), [NOT_PART, 1]);
+        assert_eq!(
+            c.narrow[0], 0,
+            "nothing computed for a statistic it is not part of"
+        );
+    }
+}
