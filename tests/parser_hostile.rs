@@ -1,6 +1,8 @@
 //! Hostile input for the event line parser, through its public API only: the bad-line corpus
 //! in `tests/data/bad_lines`, a seeded run of generated hostile lines whose expected outcome
-//! is known by construction, and a round-trip property for valid events.
+//! is known by construction, and a round-trip property for valid events. Everywhere, the
+//! result of `LineParser::parse` (the fast path with its serde_json fallback) must equal that
+//! of `LineParser::parse_serde` (serde_json alone, the reference) bit for bit.
 //!
 //! Run with `cargo test --test parser_hostile`. The seeded run covers 100,000 lines and takes
 //! a few seconds in the test profile; `HOSTILE_LINES=2000000 cargo test --release --test
@@ -142,7 +144,16 @@ fn corpus_lines_have_their_expected_reasons() {
         let line = std::fs::read(corpus_dir().join(&case.file)).expect("corpus file is readable");
         let expected = RejectReason::from_label(&case.reason)
             .unwrap_or_else(|| panic!("{}: unknown reason label {}", case.file, case.reason));
-        match parser.parse(&line, &test_hash) {
+        let parsed = parser.parse(&line, &test_hash);
+        // serde_json's path is the reference the fast path must match exactly.
+        let reference = parser.parse_serde(&line, &test_hash);
+        if !same_result(&parsed, &reference) {
+            failures.push(format!(
+                "{}: parse {parsed:?} but parse_serde {reference:?}",
+                case.file
+            ));
+        }
+        match parsed {
             Ok(event) => failures.push(format!("{}: accepted as {event:?}", case.file)),
             Err(rejection) => {
                 if let Err(problem) = check_rejection_shape(&rejection) {
@@ -854,6 +865,15 @@ fn oracle_event(line: &[u8]) -> Option<Event> {
     })
 }
 
+/// Results compare with numbers bit for bit and rejections by reason and field.
+fn same_result(a: &Result<Event, Rejection>, b: &Result<Event, Rejection>) -> bool {
+    match (a, b) {
+        (Ok(x), Ok(y)) => same_event(x, y),
+        (Err(x), Err(y)) => x == y,
+        _ => false,
+    }
+}
+
 /// Events compare with numbers bit for bit (so -0.0 and 0.0 differ).
 fn same_event(a: &Event, b: &Event) -> bool {
     a.time == b.time
@@ -888,6 +908,18 @@ fn generated_hostile_lines_are_classified_without_panics() {
             failures.push(format!("#{line_idx} {family}: panicked on {:?}", shown()));
             continue;
         };
+        // The fast path (inside `parse`) must give exactly serde_json's verdict.
+        match catch_unwind(AssertUnwindSafe(|| parser.parse_serde(&line, &test_hash))) {
+            Ok(reference) if same_result(&parsed, &reference) => {}
+            Ok(reference) => failures.push(format!(
+                "#{line_idx} {family}: parse {parsed:?} but parse_serde {reference:?} for {:?}",
+                shown()
+            )),
+            Err(_) => failures.push(format!(
+                "#{line_idx} {family}: parse_serde panicked on {:?}",
+                shown()
+            )),
+        }
         let outcome = match &parsed {
             Ok(_) => "accepted",
             Err(rejection) => rejection.reason.label(),
@@ -1022,6 +1054,11 @@ proptest! {
         let line = serde_json::to_string(&serde_json::Value::Object(object)).expect("serialisable");
 
         let event = demo_parser().parse(line.as_bytes(), &test_hash);
+        let reference = demo_parser().parse_serde(line.as_bytes(), &test_hash);
+        prop_assert!(
+            same_result(&event, &reference),
+            "{line}: parse {event:?}, parse_serde {reference:?}"
+        );
         let want = Event {
             time: Millis(ms),
             unit: Some(test_hash(canonical.as_bytes())),

@@ -6,10 +6,40 @@
 //!    looks at the bytes (a hostile feed must not make us scan megabytes).
 //! 2. Only JSON whitespace (space, tab, LF, CR; RFC 8259 §2): [`RejectReason::EmptyLine`].
 //! 3. Not UTF-8: [`RejectReason::InvalidUtf8`] (RFC 8259 §8.1 requires UTF-8).
-//! 4. One pass of serde_json over the text with a visitor that looks at every top-level key
-//!    once: schema fields are interpreted on the spot (strings are borrowed, never copied),
-//!    every other key is skipped with [`serde::de::IgnoredAny`], which serde_json walks with an
-//!    explicit stack, so deep nesting in an ignored key costs neither recursion nor memory.
+//! 4. The first non-whitespace byte is not `{`: the line is only checked for well-formedness
+//!    ([`RejectReason::NotAnObject`] or [`RejectReason::InvalidJson`]).
+//! 5. The **fast path**: one strict pass of a hand-written scanner over a subset of JSON: a
+//!    flat object whose keys and string values have no escapes and no control characters,
+//!    whose other values are numbers (RFC 8259 §6 grammar exactly), `true`, `false` or
+//!    `null`, with JSON whitespace between tokens and nothing after the closing `}`. Keys and
+//!    category values are matched by length and 8-byte words (no `memcmp` call); only the
+//!    numbers of schema fields are converted. Anything outside the subset (an escape, a
+//!    nested array or object, any syntax irregularity, an integer beyond `u64`, a float with
+//!    more than 19 digits or 9 exponent digits, a float that overflows `f64`) makes the fast
+//!    path give up without a verdict, and step 6 reads the line from scratch. So the fast
+//!    path never decides a syntax rejection: it answers only for lines that are well-formed.
+//! 6. The **serde path** ([`LineParser::parse_serde`], the reference): one pass of serde_json
+//!    over the text with a visitor that looks at every top-level key once: schema fields are
+//!    interpreted on the spot (strings are borrowed, never copied), every other key is
+//!    skipped with [`serde::de::IgnoredAny`], which serde_json walks with an explicit stack,
+//!    so deep nesting in an ignored key costs neither recursion nor memory.
+//!
+//! Why both paths give identical results: on a line the fast path accepts, serde_json meets
+//! no syntax error either, so its verdict is decided by the per-key logic alone. Both paths
+//! feed the same keys in the same order to the same per-key logic (`LineScan::entry`: skip
+//! unknown keys, skip after a fault, DuplicateField on a second occurrence, else interpret)
+//! and finish with the same `LineScan::finish`. The values they hand over are the same: a
+//! string is the same borrowed text (no escapes, so nothing to unescape); a number is the
+//! variant serde_json 1.0.154's `deserialize_any` produces (`de.rs`, `parse_integer` and
+//! `parse_number`): a non-negative integer that fits `u64` is `U64`, a negative one `I64` when
+//! it fits, but `-0` and magnitudes above 2^63 are `F64` of the negated magnitude (so `-0` is
+//! `-0.0`); a fraction or exponent is the correctly rounded `f64` (serde_json's
+//! `float_roundtrip` feature uses a correctly rounded algorithm, so does `str::parse::<f64>`,
+//! and so does the exact Clinger fast path for at most 2^53 with a power of ten up to 10^22).
+//! The unit hash is called with the same canonical text and as often (at most once) on both
+//! paths: the fast path records the text and calls the caller's hash only when it answers.
+//! The differential tests (unit tests here, a proptest, the hostile-line run in
+//! `tests/parser_hostile.rs` and the `parse_diff` fuzz target) compare the two bit for bit.
 //!
 //! # Which reason wins when a line has several faults
 //! Syntax first: a line that is not one well-formed JSON text (truncated, trailing garbage,
@@ -24,6 +54,7 @@
 //! stored. A [`Rejection`] carries only a reason and a schema field name (configuration, not
 //! data), so logging or counting rejections cannot leak line content.
 
+use std::cell::RefCell;
 use std::fmt;
 use std::sync::Arc;
 
@@ -276,18 +307,122 @@ enum Slot {
 /// [`LineParser::new`] refuses domains with `u32::MAX` or more values.
 const CATEGORY_UNSEEN: u32 = u32::MAX;
 
+/// Exact-match lookup of names (schema keys, category values) by their bytes, built for the
+/// short names of a schema: open addressing over a hash of every byte, then the length and
+/// the bytes compared as little-endian `u64` words in an inline loop, so a lookup costs one
+/// hash and usually one comparison, calls no `memcmp`, and never allocates. The table is
+/// filled from configuration only, so line content cannot lengthen its probe chains.
+#[derive(Debug)]
+struct NameTable<V> {
+    /// The names with their hash and value, in the order given.
+    entries: Vec<NameEntry<V>>,
+    /// Per bucket: 1 + an index into `entries`, or 0 for an empty bucket. A power-of-two
+    /// length at least twice the number of entries, so every probe sequence meets a 0.
+    buckets: Box<[usize]>,
+    /// `64 - log2(buckets.len())`: a hash's top bits pick its first bucket.
+    shift: u32,
+}
+
+#[derive(Debug)]
+struct NameEntry<V> {
+    name: Box<[u8]>,
+    hash: u64,
+    value: V,
+}
+
+/// Knuth's multiplicative hashing constant, 2^64 divided by the golden ratio.
+const HASH_MULTIPLIER: u64 = 0x9e37_79b9_7f4a_7c15;
+
+/// Up to seven trailing bytes as a little-endian word, zero-padded.
+#[inline]
+fn tail_word(tail: &[u8]) -> u64 {
+    tail.iter()
+        .rev()
+        .fold(0u64, |word, &b| (word << 8) | u64::from(b))
+}
+
+/// A hash of every byte and the length (one multiply per 8 bytes).
+#[inline]
+fn name_hash(name: &[u8]) -> u64 {
+    let (words, tail) = name.as_chunks::<8>();
+    let mut h = name.len() as u64;
+    for word in words {
+        h = (h ^ u64::from_le_bytes(*word))
+            .wrapping_mul(HASH_MULTIPLIER)
+            .rotate_left(31);
+    }
+    (h ^ tail_word(tail)).wrapping_mul(HASH_MULTIPLIER)
+}
+
+/// Byte equality: length first, then 8-byte words, then the tail as one word.
+#[inline]
+fn same_bytes(a: &[u8], b: &[u8]) -> bool {
+    if a.len() != b.len() {
+        return false;
+    }
+    let ((wa, ta), (wb, tb)) = (a.as_chunks::<8>(), b.as_chunks::<8>());
+    wa.iter()
+        .zip(wb)
+        .all(|(x, y)| u64::from_le_bytes(*x) == u64::from_le_bytes(*y))
+        && tail_word(ta) == tail_word(tb)
+}
+
+impl<V: Copy> NameTable<V> {
+    /// A table of distinct names (the caller has checked there are no repeats).
+    fn new(names: Vec<(Box<str>, V)>) -> NameTable<V> {
+        let n_buckets = (2 * names.len()).max(8).next_power_of_two();
+        let shift = 64 - n_buckets.trailing_zeros();
+        let mut buckets = vec![0usize; n_buckets].into_boxed_slice();
+        let mask = n_buckets - 1;
+        let mut entries = Vec::with_capacity(names.len());
+        for (i, (name, value)) in names.into_iter().enumerate() {
+            let name: Box<[u8]> = name.into_boxed_bytes();
+            let hash = name_hash(&name);
+            let mut b = (hash >> shift) as usize & mask;
+            // Terminates: at most half of the buckets are ever taken.
+            while buckets.get(b).is_some_and(|&taken| taken != 0) {
+                b = (b + 1) & mask;
+            }
+            if let Some(bucket) = buckets.get_mut(b) {
+                *bucket = i + 1;
+            }
+            entries.push(NameEntry { name, hash, value });
+        }
+        NameTable {
+            entries,
+            buckets,
+            shift,
+        }
+    }
+
+    /// The value of `name`, if it is in the table (exact byte match).
+    #[inline]
+    fn get(&self, name: &[u8]) -> Option<V> {
+        let hash = name_hash(name);
+        let mask = self.buckets.len() - 1;
+        let mut b = (hash >> self.shift) as usize & mask;
+        loop {
+            // An empty bucket (0) ends the probe sequence; one exists (see `buckets`).
+            let entry = self.entries.get(self.buckets.get(b)?.checked_sub(1)?)?;
+            if entry.hash == hash && same_bytes(&entry.name, name) {
+                return Some(entry.value);
+            }
+            b = (b + 1) & mask;
+        }
+    }
+}
+
 /// Parses lines against one [`Schema`]; built once, shared by reference.
 ///
-/// Lookups are sorted tables searched by bisection: key names are compared as `&str`
-/// borrowed from the line, so matching a key or a category value never allocates, and a
-/// schema of a dozen fields needs about four comparisons per key.
+/// Lookups are [`NameTable`]s: key names and category values are matched as bytes borrowed
+/// from the line (never allocating), by hash, length and 8-byte words.
 #[derive(Debug)]
 pub struct LineParser {
     schema: Schema,
-    /// Every schema field name with its slot, sorted by name.
-    keys: Vec<(Box<str>, Slot)>,
-    /// Per category field: its values with their domain index, sorted by value.
-    domains: Vec<Vec<(Box<str>, u32)>>,
+    /// Every schema field name with its slot.
+    keys: NameTable<Slot>,
+    /// Per category field: its values with their domain index.
+    domains: Vec<NameTable<u32>>,
     /// Shared copies of the field names for [`Rejection::field`] (cloning is a refcount bump).
     time_name: Arc<str>,
     unit_name: Option<Arc<str>>,
@@ -353,7 +488,7 @@ impl LineParser {
                     value: pair[0].0.to_string(),
                 });
             }
-            domains.push(table);
+            domains.push(NameTable::new(table));
         }
 
         Ok(LineParser {
@@ -369,7 +504,7 @@ impl LineParser {
                 .iter()
                 .map(|n| Arc::from(n.as_str()))
                 .collect(),
-            keys,
+            keys: NameTable::new(keys),
             domains,
             schema,
         })
@@ -390,6 +525,29 @@ impl LineParser {
     ///
     /// Never panics; see the module documentation for which reason wins.
     pub fn parse(&self, line: &[u8], unit_hash: &dyn Fn(&[u8]) -> u64) -> Result<Event, Rejection> {
+        let text = self.object_text(line)?;
+        match self.parse_fast(text, unit_hash) {
+            Some(result) => result,
+            None => self.parse_object_serde(text, unit_hash),
+        }
+    }
+
+    /// The serde_json reference path: the same checks and the same verdicts as
+    /// [`LineParser::parse`], which gives identical results (numbers bit for bit) and only
+    /// runs faster. Kept public as the yardstick of issue 9's floor (`examples/parse_floor`)
+    /// and for the differential tests.
+    pub fn parse_serde(
+        &self,
+        line: &[u8],
+        unit_hash: &dyn Fn(&[u8]) -> u64,
+    ) -> Result<Event, Rejection> {
+        let text = self.object_text(line)?;
+        self.parse_object_serde(text, unit_hash)
+    }
+
+    /// Steps 1 to 4 of the module documentation: the line as text whose first
+    /// non-whitespace byte is `{`, or the rejection of the whole line.
+    fn object_text<'l>(&self, line: &'l [u8]) -> Result<&'l str, Rejection> {
         if line.len() > self.schema.max_line_bytes {
             return Err(Rejection::line(RejectReason::LineTooLong));
         }
@@ -419,7 +577,44 @@ impl LineParser {
             };
             return Err(Rejection::line(reason));
         }
+        Ok(text)
+    }
 
+    /// Step 5: the fast path. `None` when the line is outside its subset of JSON (the line
+    /// may still be valid); otherwise the verdict the serde path would give.
+    ///
+    /// The caller's `unit_hash` is called only once the scan is complete, with the canonical
+    /// text the shared per-key logic handed to a recorder, and only if that logic accepted
+    /// the unit id, which is exactly when the serde path calls it.
+    fn parse_fast(
+        &self,
+        text: &str,
+        unit_hash: &dyn Fn(&[u8]) -> u64,
+    ) -> Option<Result<Event, Rejection>> {
+        let recorded: RefCell<smallvec::SmallVec<[u8; MAX_UNIT_ID_BYTES]>> =
+            RefCell::new(smallvec::SmallVec::new());
+        let record = |canonical: &[u8]| {
+            let mut buf = recorded.borrow_mut();
+            buf.clear();
+            buf.extend_from_slice(canonical);
+            0
+        };
+        let mut scan = LineScan::new(self, &record);
+        FastLine { text, pos: 0 }.object(&mut scan).ok()?;
+        let unit = scan.unit.map(|_| unit_hash(&recorded.borrow()));
+        let mut result = scan.finish();
+        if let Ok(event) = &mut result {
+            event.unit = unit;
+        }
+        Some(result)
+    }
+
+    /// Step 6: the serde path on a line that passed steps 1 to 4.
+    fn parse_object_serde(
+        &self,
+        text: &str,
+        unit_hash: &dyn Fn(&[u8]) -> u64,
+    ) -> Result<Event, Rejection> {
         let mut scan = LineScan::new(self, unit_hash);
         let mut de = serde_json::Deserializer::from_str(text);
         match (&mut scan).deserialize(&mut de).and_then(|()| de.end()) {
@@ -438,21 +633,14 @@ impl LineParser {
         }
     }
 
+    /// The slot of a key (after JSON unescaping), if it is a schema field.
     fn slot_of_key(&self, key: &str) -> Option<Slot> {
-        self.keys
-            .binary_search_by(|(name, _)| name.as_ref().cmp(key))
-            .ok()
-            .and_then(|i| self.keys.get(i))
-            .map(|(_, slot)| *slot)
+        self.keys.get(key.as_bytes())
     }
 
+    /// The domain index of a category value: an exact match on the unescaped value.
     fn category_index(&self, category: usize, value: &str) -> Option<u32> {
-        let table = self.domains.get(category)?;
-        table
-            .binary_search_by(|(name, _)| name.as_ref().cmp(value))
-            .ok()
-            .and_then(|i| table.get(i))
-            .map(|(_, idx)| *idx)
+        self.domains.get(category)?.get(value.as_bytes())
     }
 
     /// Maps a serde_json error to a rejection.
@@ -589,6 +777,328 @@ fn is_json_number(token: &[u8]) -> bool {
     rest.is_empty()
 }
 
+/// The fast path met something outside its subset of JSON; the serde path decides.
+#[derive(Debug, PartialEq, Eq)]
+struct GiveUp;
+
+/// Bytes that end the fast scan of a string: the closing quote, and the backslash and raw
+/// control characters (U+0000..U+001F, RFC 8259 §7) it leaves to serde_json.
+const STRING_STOP: [bool; 256] = {
+    let mut table = [false; 256];
+    let mut b = 0;
+    while b < 0x20 {
+        table[b] = true;
+        b += 1;
+    }
+    table[b'"' as usize] = true;
+    table[b'\\' as usize] = true;
+    table
+};
+
+/// 10^0 ..= 10^22, each exact in binary64 (5^22 < 2^53), for Clinger's fast path.
+const POW10: [f64; 23] = [
+    1e0, 1e1, 1e2, 1e3, 1e4, 1e5, 1e6, 1e7, 1e8, 1e9, 1e10, 1e11, 1e12, 1e13, 1e14, 1e15, 1e16,
+    1e17, 1e18, 1e19, 1e20, 1e21, 1e22,
+];
+
+/// Most digits (integer and fraction parts together) of a float the fast path converts:
+/// 19 digits always fit `u64`, so serde_json stays on its short-significand path too.
+const FAST_FLOAT_DIGITS: u32 = 19;
+/// Most exponent digits of a float the fast path converts (the exponent fits `i32`).
+const FAST_EXPONENT_DIGITS: u32 = 9;
+
+/// A number literal the fast path has checked against RFC 8259 §6, not yet converted
+/// (values that are only skipped are never converted, as with serde_json's `IgnoredAny`).
+struct FastNumber<'a> {
+    /// The literal, sign included.
+    text: &'a str,
+    negative: bool,
+    /// The digits of the integer and fraction parts as one integer (exact unless
+    /// `overflow`).
+    significand: u64,
+    /// The significand does not fit `u64`.
+    overflow: bool,
+    /// Digits in the integer and fraction parts.
+    digits: u32,
+    /// Digits in the fraction part.
+    fraction_digits: u32,
+    /// The exponent's value (saturating) and its number of digits; `None` without one.
+    exponent: Option<(i64, u32)>,
+}
+
+impl<'a> FastNumber<'a> {
+    /// The value serde_json's `deserialize_any` hands to a visitor for this literal (serde_json
+    /// 1.0.154, `de.rs`, `parse_integer`, `parse_number`, `f64_from_parts`), or [`GiveUp`]
+    /// where the fast path does not follow serde_json (integers beyond `u64`, long floats,
+    /// floats that overflow, which serde_json turns into an error).
+    fn to_json(&self) -> Result<Json<'a>, GiveUp> {
+        if self.fraction_digits == 0 && self.exponent.is_none() {
+            if self.overflow {
+                return Err(GiveUp);
+            }
+            if !self.negative {
+                return Ok(Json::U64(self.significand));
+            }
+            // serde_json's own rule, verbatim: a wrapping negation; `-0` and magnitudes
+            // above 2^63 become the f64 of the negated magnitude (`-0` is `-0.0`).
+            let negated = (self.significand as i64).wrapping_neg();
+            return Ok(if negated >= 0 {
+                Json::F64(-(self.significand as f64))
+            } else {
+                Json::I64(negated)
+            });
+        }
+        if self.digits > FAST_FLOAT_DIGITS {
+            return Err(GiveUp);
+        }
+        let exponent = match self.exponent {
+            Some((_, n)) if n > FAST_EXPONENT_DIGITS => return Err(GiveUp),
+            Some((e, _)) => e,
+            None => 0,
+        };
+        let power = exponent - i64::from(self.fraction_digits);
+        let exact_power = POW10.get(usize::try_from(power.unsigned_abs()).unwrap_or(usize::MAX));
+        let value = match exact_power {
+            // Clinger's fast path: an exact significand and an exact power of ten, so the one
+            // multiplication or division is correctly rounded (IEEE 754 §4.3).
+            Some(&scale) if self.significand <= 1 << 53 => {
+                let magnitude = if power < 0 {
+                    self.significand as f64 / scale
+                } else {
+                    self.significand as f64 * scale
+                };
+                if self.negative { -magnitude } else { magnitude }
+            }
+            // std's parser is correctly rounded too (and keeps the sign of a zero).
+            _ => self.text.parse::<f64>().map_err(|_| GiveUp)?,
+        };
+        if value.is_infinite() {
+            return Err(GiveUp);
+        }
+        Ok(Json::F64(value))
+    }
+}
+
+/// A value as the fast path reads it.
+enum FastValue<'a> {
+    Str(&'a str),
+    Number(FastNumber<'a>),
+    /// `true`, `false` or `null`.
+    Literal,
+}
+
+/// The fast path's scanner: a position in a line that passed steps 1 to 4 (module
+/// documentation). Every method reads one token or gives up; none looks back.
+struct FastLine<'a> {
+    text: &'a str,
+    pos: usize,
+}
+
+impl<'a> FastLine<'a> {
+    #[inline]
+    fn peek(&self) -> Option<u8> {
+        self.text.as_bytes().get(self.pos).copied()
+    }
+
+    /// Skips JSON whitespace (RFC 8259 §2: space, tab, LF, CR).
+    #[inline]
+    fn skip_whitespace(&mut self) {
+        while let Some(b' ' | b'\t' | b'\n' | b'\r') = self.peek() {
+            self.pos += 1;
+        }
+    }
+
+    /// Reads `byte`.
+    #[inline]
+    fn eat(&mut self, byte: u8) -> Result<(), GiveUp> {
+        if self.peek() == Some(byte) {
+            self.pos += 1;
+            Ok(())
+        } else {
+            Err(GiveUp)
+        }
+    }
+
+    /// Reads the whole line: one flat object and nothing but whitespace after it, feeding
+    /// every key and value to `scan` in line order.
+    fn object(&mut self, scan: &mut LineScan<'_>) -> Result<(), GiveUp> {
+        self.skip_whitespace();
+        self.eat(b'{')?;
+        self.skip_whitespace();
+        if self.peek() == Some(b'}') {
+            self.pos += 1;
+        } else {
+            loop {
+                let key = self.string()?;
+                self.skip_whitespace();
+                self.eat(b':')?;
+                self.skip_whitespace();
+                scan.entry(scan.parser.slot_of_key(key), self)?;
+                self.skip_whitespace();
+                match self.peek() {
+                    Some(b',') => {
+                        self.pos += 1;
+                        self.skip_whitespace();
+                    }
+                    Some(b'}') => {
+                        self.pos += 1;
+                        break;
+                    }
+                    _ => return Err(GiveUp),
+                }
+            }
+        }
+        self.skip_whitespace();
+        if self.pos == self.text.len() {
+            Ok(())
+        } else {
+            Err(GiveUp)
+        }
+    }
+
+    /// A string without escapes or control characters (RFC 8259 §7); the text between the
+    /// quotes is valid UTF-8 because the line is and the quotes are ASCII.
+    #[inline]
+    fn string(&mut self) -> Result<&'a str, GiveUp> {
+        self.eat(b'"')?;
+        let start = self.pos;
+        let rest = self.text.as_bytes().get(start..).ok_or(GiveUp)?;
+        let len = rest
+            .iter()
+            .position(|&b| STRING_STOP[usize::from(b)])
+            .ok_or(GiveUp)?;
+        if rest.get(len) != Some(&b'"') {
+            return Err(GiveUp);
+        }
+        self.pos = start + len + 1;
+        self.text.get(start..start + len).ok_or(GiveUp)
+    }
+
+    /// Reads a run of ASCII digits into `significand` (exact while it fits `u64`).
+    #[inline]
+    fn digits(&mut self, significand: &mut u64, overflow: &mut bool) -> u32 {
+        let mut n = 0;
+        while let Some(b @ b'0'..=b'9') = self.peek() {
+            self.pos += 1;
+            n += 1;
+            match significand
+                .checked_mul(10)
+                .and_then(|s| s.checked_add(u64::from(b - b'0')))
+            {
+                Some(s) => *significand = s,
+                None => *overflow = true,
+            }
+        }
+        n
+    }
+
+    /// A number literal, exactly RFC 8259 §6:
+    /// `-? (0 | [1-9][0-9]*) (\. [0-9]+)? ([eE] [+-]? [0-9]+)?`. A leading zero followed by
+    /// a digit ends the literal at the zero; the caller then gives up on the digit.
+    fn number(&mut self) -> Result<FastNumber<'a>, GiveUp> {
+        let start = self.pos;
+        let negative = self.peek() == Some(b'-');
+        if negative {
+            self.pos += 1;
+        }
+        let (mut significand, mut overflow) = (0u64, false);
+        let integer_digits = match self.peek() {
+            Some(b'0') => {
+                self.pos += 1;
+                1
+            }
+            Some(b'1'..=b'9') => self.digits(&mut significand, &mut overflow),
+            _ => return Err(GiveUp),
+        };
+        let mut fraction_digits = 0;
+        if self.peek() == Some(b'.') {
+            self.pos += 1;
+            fraction_digits = self.digits(&mut significand, &mut overflow);
+            if fraction_digits == 0 {
+                return Err(GiveUp);
+            }
+        }
+        let mut exponent = None;
+        if let Some(b'e' | b'E') = self.peek() {
+            self.pos += 1;
+            let negative_exponent = match self.peek() {
+                Some(b'-') => {
+                    self.pos += 1;
+                    true
+                }
+                Some(b'+') => {
+                    self.pos += 1;
+                    false
+                }
+                _ => false,
+            };
+            let (mut value, mut value_overflow) = (0u64, false);
+            let n = self.digits(&mut value, &mut value_overflow);
+            if n == 0 {
+                return Err(GiveUp);
+            }
+            let value = if value_overflow {
+                i64::MAX
+            } else {
+                i64::try_from(value).unwrap_or(i64::MAX)
+            };
+            exponent = Some((if negative_exponent { -value } else { value }, n));
+        }
+        Ok(FastNumber {
+            text: self.text.get(start..self.pos).ok_or(GiveUp)?,
+            negative,
+            significand,
+            overflow,
+            digits: integer_digits + fraction_digits,
+            fraction_digits,
+            exponent,
+        })
+    }
+
+    /// `true`, `false` or `null`.
+    fn literal(&mut self) -> Result<FastValue<'a>, GiveUp> {
+        let rest = self.text.as_bytes().get(self.pos..).ok_or(GiveUp)?;
+        let len = [&b"true"[..], b"false", b"null"]
+            .into_iter()
+            .find(|word| rest.starts_with(word))
+            .ok_or(GiveUp)?
+            .len();
+        self.pos += len;
+        Ok(FastValue::Literal)
+    }
+
+    /// Any value of the subset: a string, a number or a literal (arrays and objects give up).
+    #[inline]
+    fn value(&mut self) -> Result<FastValue<'a>, GiveUp> {
+        match self.peek() {
+            Some(b'"') => self.string().map(FastValue::Str),
+            Some(b'-' | b'0'..=b'9') => self.number().map(FastValue::Number),
+            Some(b't' | b'f' | b'n') => self.literal(),
+            _ => Err(GiveUp),
+        }
+    }
+}
+
+impl ValueSource for FastLine<'_> {
+    type Error = GiveUp;
+
+    fn skip(&mut self) -> Result<(), GiveUp> {
+        self.value().map(|_| ())
+    }
+
+    fn interpret(
+        &mut self,
+        seed: ValueSeed<'_>,
+    ) -> Result<Result<FieldValue, RejectReason>, GiveUp> {
+        let json = match self.value()? {
+            FastValue::Str(s) => Json::Str(s),
+            FastValue::Number(n) => n.to_json()?,
+            FastValue::Literal => Json::Other,
+        };
+        Ok(seed.interpret(json))
+    }
+}
+
 /// The state of one line's parse: what has been filled and the first fault seen.
 struct LineScan<'p> {
     parser: &'p LineParser,
@@ -658,6 +1168,44 @@ impl<'p> LineScan<'p> {
         }
     }
 
+    /// The per-key logic both paths share: `slot` is the schema slot of the key just read
+    /// (`None` for a key outside the schema), `values` yields that key's value.
+    ///
+    /// An unknown key, any key after the first fault, and a second occurrence of a schema
+    /// field (which becomes the fault, DuplicateField) have their value only read for
+    /// syntax; otherwise the value is interpreted for its slot and fills it or becomes the
+    /// fault.
+    #[inline]
+    fn entry<S: ValueSource>(
+        &mut self,
+        slot: Option<Slot>,
+        values: &mut S,
+    ) -> Result<(), S::Error> {
+        let Some(slot) = slot else {
+            return values.skip();
+        };
+        if self.fault.is_some() {
+            // Only syntax matters after the first fault.
+            return values.skip();
+        }
+        if self.is_filled(slot) {
+            self.fault = Some((RejectReason::DuplicateField, slot));
+            return values.skip();
+        }
+        self.pending = Some(slot);
+        let value = values.interpret(ValueSeed {
+            parser: self.parser,
+            unit_hash: self.unit_hash,
+            slot,
+        })?;
+        self.pending = None;
+        match value {
+            Ok(value) => self.fill(value, slot),
+            Err(reason) => self.fault = Some((reason, slot)),
+        }
+        Ok(())
+    }
+
     /// The event, or the first fault, or the first missing field in schema order.
     fn finish(self) -> Result<Event, Rejection> {
         let parser = self.parser;
@@ -713,33 +1261,41 @@ impl<'de> Visitor<'de> for TopLevel<'_, '_> {
         let scan = self.0;
         let parser = scan.parser;
         while let Some(slot) = map.next_key_seed(KeySeed(parser))? {
-            let Some(slot) = slot else {
-                map.next_value::<IgnoredAny>()?;
-                continue;
-            };
-            if scan.fault.is_some() {
-                // Only syntax matters after the first fault.
-                map.next_value::<IgnoredAny>()?;
-                continue;
-            }
-            if scan.is_filled(slot) {
-                scan.fault = Some((RejectReason::DuplicateField, slot));
-                map.next_value::<IgnoredAny>()?;
-                continue;
-            }
-            scan.pending = Some(slot);
-            let value = map.next_value_seed(ValueSeed {
-                parser,
-                unit_hash: scan.unit_hash,
-                slot,
-            })?;
-            scan.pending = None;
-            match value {
-                Ok(value) => scan.fill(value, slot),
-                Err(reason) => scan.fault = Some((reason, slot)),
-            }
+            scan.entry(slot, &mut MapValues(&mut map, std::marker::PhantomData))?;
         }
         Ok(())
+    }
+}
+
+/// Where [`LineScan::entry`] reads the value of the key just read: serde_json's map
+/// ([`MapValues`]) or the fast path's scanner ([`FastLine`]).
+trait ValueSource {
+    /// Why the value could not be read (serde_json's error; the fast path's [`GiveUp`]).
+    type Error;
+    /// Reads the value for syntax only (numbers are not converted).
+    fn skip(&mut self) -> Result<(), Self::Error>;
+    /// Reads the value and interprets it for the seed's slot.
+    fn interpret(
+        &mut self,
+        seed: ValueSeed<'_>,
+    ) -> Result<Result<FieldValue, RejectReason>, Self::Error>;
+}
+
+/// The serde path's values: the next value of serde_json's map.
+struct MapValues<'m, 'de, A>(&'m mut A, std::marker::PhantomData<&'de ()>);
+
+impl<'de, A: MapAccess<'de>> ValueSource for MapValues<'_, 'de, A> {
+    type Error = A::Error;
+
+    fn skip(&mut self) -> Result<(), A::Error> {
+        self.0.next_value::<IgnoredAny>().map(|IgnoredAny| ())
+    }
+
+    fn interpret(
+        &mut self,
+        seed: ValueSeed<'_>,
+    ) -> Result<Result<FieldValue, RejectReason>, A::Error> {
+        self.0.next_value_seed(seed)
     }
 }
 
@@ -927,7 +1483,7 @@ impl<'de> Visitor<'de> for ValueSeed<'_> {
 #[cfg(test)]
 mod tests {
     use super::*;
-    use std::cell::RefCell;
+    use proptest::prelude::*;
 
     /// The demo schema of scenario.md; the line limit is the contract's example value.
     fn demo_schema() -> Schema {
@@ -1504,6 +2060,491 @@ mod tests {
         }
         assert_eq!(RejectReason::InvalidUtf8.label(), "invalid_utf8");
         assert_eq!(RejectReason::from_label("nope"), None);
+    }
+
+    // -----------------------------------------------------------------------------------
+    // The fast path against the serde path (the reference: serde_json 1.0.154 through the
+    // same per-key logic). RFC 8259 is the reference for the grammar.
+    // -----------------------------------------------------------------------------------
+
+    /// Results compare with numbers bit for bit (so -0.0 and 0.0 differ).
+    fn same_result(a: &Result<Event, Rejection>, b: &Result<Event, Rejection>) -> bool {
+        match (a, b) {
+            (Ok(x), Ok(y)) => {
+                x.time == y.time
+                    && x.unit == y.unit
+                    && x.categories == y.categories
+                    && x.numbers.len() == y.numbers.len()
+                    && x.numbers
+                        .iter()
+                        .zip(&y.numbers)
+                        .all(|(p, q)| p.to_bits() == q.to_bits())
+            }
+            (Err(x), Err(y)) => x == y,
+            _ => false,
+        }
+    }
+
+    /// Checks that `parse` and the fast path's own answer (when it gives one) equal
+    /// `parse_serde` on `line`, and returns the fast path's answer (`None`: it gave up).
+    #[track_caller]
+    fn fast_and_serde(line: &str) -> Option<Result<Event, Rejection>> {
+        let parser = demo_parser();
+        let reference = parser.parse_serde(line.as_bytes(), &test_hash);
+        let full = parser.parse(line.as_bytes(), &test_hash);
+        assert!(
+            same_result(&full, &reference),
+            "{line:?}: parse {full:?}, parse_serde {reference:?}"
+        );
+        let text = parser.object_text(line.as_bytes()).ok()?;
+        let fast = parser.parse_fast(text, &test_hash);
+        if let Some(fast) = &fast {
+            assert!(
+                same_result(fast, &reference),
+                "{line:?}: fast path {fast:?}, parse_serde {reference:?}"
+            );
+        }
+        fast
+    }
+
+    /// The fast path answers `line` (and agrees with serde_json).
+    #[track_caller]
+    fn fast_answers(line: &str) -> Result<Event, Rejection> {
+        fast_and_serde(line).unwrap_or_else(|| panic!("fast path gave up on {line:?}"))
+    }
+
+    /// The fast path gives up on `line`; returns the serde path's verdict.
+    #[track_caller]
+    fn fast_gives_up(line: &str) -> Result<Event, Rejection> {
+        let fast = fast_and_serde(line);
+        assert!(fast.is_none(), "fast path answered {line:?} with {fast:?}");
+        demo_parser().parse_serde(line.as_bytes(), &test_hash)
+    }
+
+    fn reason(result: Result<Event, Rejection>) -> Option<(RejectReason, Option<String>)> {
+        result
+            .err()
+            .map(|r| (r.reason, r.field.as_deref().map(str::to_string)))
+    }
+
+    #[test]
+    fn fast_path_numbers_are_the_variants_serde_json_produces() {
+        let fare = |raw: &str| fast_answers(&with_field("fare_cents", Some(raw)));
+        let bits = |raw: &str| fare(raw).map(|e| e.numbers[0].to_bits());
+        // serde_json: `-0` is F64(-0.0) (de.rs parse_number: wrapping negation of 0 is not
+        // negative); `-0.0`, `-0e0` and `-0E-5` are -0.0 too (sign applied after the value).
+        for negative_zero in ["-0", "-0.0", "-0e0", "-0E-5", "-0.000e+3"] {
+            assert_eq!(
+                bits(negative_zero),
+                Ok((-0.0f64).to_bits()),
+                "{negative_zero}"
+            );
+        }
+        for zero in ["0", "0.0", "0e0", "0E+400"] {
+            assert_eq!(bits(zero), Ok(0.0f64.to_bits()), "{zero}");
+        }
+        // RFC 8259 §6: e and E, with an optional sign.
+        for hundred in [
+            "1e2", "1E2", "1E+2", "1e+2", "100", "100.0", "1000e-1", "0.1e3",
+        ] {
+            assert_eq!(bits(hundred), Ok(100.0f64.to_bits()), "{hundred}");
+        }
+        // Correctly rounded like serde_json's float_roundtrip and std: Clinger's fast path
+        // and beyond it (exponent past 22, significand past 2^53).
+        for (raw, want) in [
+            ("3.8", 3.8f64),
+            ("0.1", 0.1),
+            ("-14.5", -14.5),
+            ("5e-324", 5e-324),
+            ("2.2250738585072014e-308", 2.2250738585072014e-308),
+            ("1.5e-30", 1.5e-30),
+            ("123456789012345.67", 123_456_789_012_345.67),
+            ("9007199254740993e-1", 900_719_925_474_099.3),
+            (
+                "0.3000000000000000166533453693773481063544750213623046875",
+                0.3,
+            ),
+        ] {
+            let got = fast_and_serde(&with_field("fare_cents", Some(raw)));
+            if let Some(got) = got {
+                assert_eq!(
+                    got.map(|e| e.numbers[0].to_bits()),
+                    Ok(want.to_bits()),
+                    "{raw}"
+                );
+            }
+        }
+        // Integers: 19 and 20 digits, u64::MAX, i64::MIN are U64/I64 on the fast path.
+        let card = |raw: &str| {
+            let line = with_field("card", Some(raw));
+            fast_answers(&line).map(|e| e.unit)
+        };
+        for raw in [
+            "1234567890123456789",
+            "12345678901234567890",
+            "18446744073709551615",
+            "-9223372036854775808",
+            "9223372036854775808",
+            "0",
+        ] {
+            assert_eq!(
+                card(raw),
+                Ok(Some(test_hash(raw.as_bytes()))),
+                "card = {raw}"
+            );
+        }
+        // Negative magnitudes above 2^63 and -0 are F64 in serde_json: not a unit id.
+        for raw in ["-9223372036854775809", "-18446744073709551615", "-0"] {
+            assert_eq!(
+                reason(fast_answers(&with_field("card", Some(raw)))),
+                Some((RejectReason::BadUnitId, Some("card".into()))),
+                "card = {raw}"
+            );
+        }
+        assert_eq!(
+            reason(fare("18446744073709551615")),
+            Some((RejectReason::NumberOutOfRange, Some("fare_cents".into())))
+        );
+        assert_eq!(
+            reason(fare("1.7976931348623157e308")),
+            Some((RejectReason::NumberOutOfRange, Some("fare_cents".into())))
+        );
+    }
+
+    #[test]
+    fn fast_path_gives_up_where_serde_json_decides() {
+        let out_of_range = Some((RejectReason::NumberOutOfRange, Some("fare_cents".into())));
+        // Overflowing f64: serde_json errs, json_error_rejection maps it.
+        for raw in ["1e400", "-1e400", "1E+400", "123e99999999999999999999"] {
+            let line = with_field("fare_cents", Some(raw));
+            assert_eq!(reason(fast_gives_up(&line)), out_of_range, "{raw}");
+        }
+        // Integers beyond u64 (serde_json: F64 via its long-integer path).
+        for raw in [
+            "18446744073709551616",
+            "-18446744073709551616",
+            &"9".repeat(30),
+        ] {
+            let line = with_field("fare_cents", Some(raw));
+            assert_eq!(reason(fast_gives_up(&line)), out_of_range, "{raw}");
+            assert_eq!(
+                reason(fast_gives_up(&with_field("card", Some(raw)))),
+                Some((RejectReason::BadUnitId, Some("card".into())))
+            );
+        }
+        // Floats with more than 19 digits or 9 exponent digits.
+        assert_eq!(
+            fast_gives_up(&with_field("fare_cents", Some("0.12345678901234567890")))
+                .map(|e| e.numbers[0].to_bits()),
+            Ok(0.123_456_789_012_345_68f64.to_bits())
+        );
+        assert!(fast_gives_up(&with_field("fare_cents", Some("1e0000000001"))).is_ok());
+        // Escapes in keys and values (RFC 8259 §7) only ever go through serde_json.
+        let escaped_key = SCENARIO_LINE.replacen('}', r#","\u0074s":0}"#, 1);
+        assert_eq!(
+            reason(fast_gives_up(&escaped_key)),
+            Some((RejectReason::DuplicateField, Some("ts".into())))
+        );
+        assert!(fast_gives_up(&with_field("zone", Some(r#""harb\u006fur""#))).is_ok());
+        assert!(fast_gives_up(&with_field("card", Some(r#""c-\"7f""#))).is_ok());
+        assert!(fast_gives_up(&SCENARIO_LINE.replacen('{', r#"{"x\n":1,"#, 1)).is_ok());
+        // Nested values, even in unknown keys.
+        assert!(fast_gives_up(&SCENARIO_LINE.replacen('{', r#"{"x":[1],"#, 1)).is_ok());
+        assert!(fast_gives_up(&SCENARIO_LINE.replacen('{', r#"{"x":{},"#, 1)).is_ok());
+        // Syntax irregularities (RFC 8259 §2, §4, §6): serde_json says InvalidJson.
+        let invalid = Some((RejectReason::InvalidJson, None));
+        for raw in [
+            "01", "1.", ".5", "+1", "-", "1e", "1e+", "--1", "0x1", "1.2.3", "tru",
+        ] {
+            let line = with_field("fare_cents", Some(raw));
+            assert_eq!(reason(fast_gives_up(&line)), invalid, "fare_cents = {raw}");
+            // The same in a skipped key.
+            let line = SCENARIO_LINE.replacen('{', &format!(r#"{{"x":{raw},"#), 1);
+            assert_eq!(reason(fast_gives_up(&line)), invalid, "x = {raw}");
+        }
+        for line in [
+            format!("{SCENARIO_LINE} x"),
+            format!("{SCENARIO_LINE}}}"),
+            format!("{SCENARIO_LINE},"),
+            SCENARIO_LINE.replacen('}', ",}", 1),
+            SCENARIO_LINE.replacen(':', " ", 1),
+            SCENARIO_LINE.replacen(',', ",,", 1),
+            SCENARIO_LINE.replacen("\"ts\"", "ts", 1),
+            SCENARIO_LINE[..SCENARIO_LINE.len() - 1].to_string(),
+            SCENARIO_LINE.replace("c-7f3a91", "c-7f\u{1}3a91"),
+            format!("{SCENARIO_LINE}\u{c}"),
+            "{\"ts\":0".into(),
+            "{,}".into(),
+        ] {
+            assert_eq!(reason(fast_gives_up(&line)), invalid, "{line:?}");
+        }
+    }
+
+    #[test]
+    fn fast_path_answers_duplicates_unknown_keys_and_whitespace() {
+        let twice = SCENARIO_LINE.replacen('{', r#"{"zone":"uplands","#, 1);
+        assert_eq!(
+            reason(fast_answers(&twice)),
+            Some((RejectReason::DuplicateField, Some("zone".into())))
+        );
+        // A duplicate after another fault: the first fault stands.
+        let both = with_field("mode", Some(r#""rocket""#)).replacen('}', r#","mode":"bus"}"#, 1);
+        assert_eq!(
+            reason(fast_answers(&both)),
+            Some((RejectReason::UnknownCategory, Some("mode".into())))
+        );
+        // Unknown keys with literals, numbers and strings are skipped; their numbers are
+        // never converted, so an overflowing one is fine there (as with IgnoredAny).
+        for extra in [
+            r#""a":true,"b":false,"c":null,"#,
+            r#""x":1e400,"y":-0,"z":"é ☃","#,
+            r#""x":1,"x":2,"#,
+            r#""":0,"#,
+        ] {
+            let line = SCENARIO_LINE.replacen('{', &format!("{{{extra}"), 1);
+            assert!(fast_answers(&line).is_ok(), "{line}");
+        }
+        // Literals in schema fields are Other.
+        assert_eq!(
+            reason(fast_answers(&with_field("trip_km", Some("null")))),
+            Some((RejectReason::WrongType, Some("trip_km".into())))
+        );
+        assert_eq!(
+            reason(fast_answers(&with_field("ts", Some("true")))),
+            Some((RejectReason::BadTimestamp, Some("ts".into())))
+        );
+        // JSON whitespace (RFC 8259 §2) anywhere between tokens, and after the object.
+        let spaced = SCENARIO_LINE
+            .replace("\":", "\" \t: \r\n")
+            .replace(',', "\n ,\t")
+            .replacen('{', " \r\n\t{ ", 1);
+        assert!(fast_answers(&format!("{spaced} \t\r\n")).is_ok());
+        assert_eq!(
+            reason(fast_answers("{}")),
+            Some((RejectReason::MissingField, Some("ts".into())))
+        );
+        assert_eq!(
+            reason(fast_answers(" { \t} ")),
+            Some((RejectReason::MissingField, Some("ts".into())))
+        );
+        // Values that look like other things stay what they are.
+        assert_eq!(
+            reason(fast_answers(&with_field("zone", Some(r#""1e400""#)))),
+            Some((RejectReason::UnknownCategory, Some("zone".into())))
+        );
+        assert_eq!(
+            reason(fast_answers(&with_field("zone", Some("1")))),
+            Some((RejectReason::WrongType, Some("zone".into())))
+        );
+    }
+
+    #[test]
+    fn both_paths_call_the_unit_hash_alike() {
+        let calls = RefCell::new(Vec::<Vec<u8>>::new());
+        let recorder = |bytes: &[u8]| {
+            calls.borrow_mut().push(bytes.to_vec());
+            7
+        };
+        let parser = demo_parser();
+        let escaped_later = SCENARIO_LINE.replacen('}', r#","x":"\n"}"#, 1);
+        let unknown_after = with_field("zone", Some(r#""moon""#));
+        let overflow_after = with_field("transfers", Some("1e400"));
+        for line in [
+            SCENARIO_LINE.to_string(),
+            with_field("card", Some("42")),
+            escaped_later,
+            unknown_after,
+            overflow_after,
+            with_field("card", Some("null")),
+            format!("{SCENARIO_LINE} x"),
+        ] {
+            calls.borrow_mut().clear();
+            let fast = parser.parse(line.as_bytes(), &recorder);
+            let fast_calls = calls.replace(Vec::new());
+            let reference = parser.parse_serde(line.as_bytes(), &recorder);
+            let reference_calls = calls.replace(Vec::new());
+            assert!(same_result(&fast, &reference), "{line}");
+            assert_eq!(fast_calls, reference_calls, "{line}");
+            assert!(fast_calls.len() <= 1, "{line}");
+        }
+    }
+
+    #[test]
+    fn name_tables_match_exactly() {
+        let names: Vec<(Box<str>, u32)> = [
+            "",
+            "a",
+            "ab",
+            "abcdefg",
+            "abcdefgh",
+            "abcdefghi",
+            "abcdefgh1",
+            "abcdefgh2",
+            "station-000001",
+            "station-000002",
+            "é",
+            "très-long-nom-de-champ-0123456789",
+        ]
+        .iter()
+        .enumerate()
+        .map(|(i, n)| (Box::from(*n), i as u32))
+        .collect();
+        let table = NameTable::new(names.clone());
+        for (name, value) in &names {
+            assert_eq!(table.get(name.as_bytes()), Some(*value), "{name}");
+        }
+        for miss in [
+            "b",
+            "abcdefgh3",
+            "abcdefgh\0",
+            "station-00000",
+            "A",
+            "e",
+            "a\0",
+        ] {
+            assert_eq!(table.get(miss.as_bytes()), None, "{miss}");
+        }
+        // Many names sharing a long prefix still resolve (a hash of every byte).
+        let many: Vec<(Box<str>, u32)> = (0..1000u32)
+            .map(|i| (format!("station-{i:06}").into_boxed_str(), i))
+            .collect();
+        let table = NameTable::new(many);
+        for i in (0..1000u32).step_by(7) {
+            assert_eq!(table.get(format!("station-{i:06}").as_bytes()), Some(i));
+        }
+        assert_eq!(table.get(b"station-001000"), None);
+    }
+
+    /// Pieces of lines: schema and other keys (some escaped), and values of every kind,
+    /// valid and not.
+    fn key_text() -> impl Strategy<Value = String> {
+        prop_oneof![
+            4 => proptest::sample::select(vec![
+                "ts", "card", "zone", "mode", "fare_cents", "trip_km", "trip_minutes",
+                "transfers",
+            ])
+            .prop_map(|k| format!("\"{k}\"")),
+            1 => proptest::sample::select(vec![
+                r#""\u0074s""#, r#""zon\u0065""#, r#""x""#, r#""""#, r#""ts ""#, r#""é""#,
+                r#""x\"y""#, "x", "\"a\u{1}\"",
+            ])
+            .prop_map(str::to_string),
+        ]
+    }
+
+    fn value_text() -> impl Strategy<Value = String> {
+        prop_oneof![
+            // RFC 8259 §6 numbers, long and short, with big exponents.
+            3 => "-?(0|[1-9][0-9]{0,22})(\\.[0-9]{1,22})?([eE][+-]?[0-9]{1,4})?",
+            // Near-numbers: not all of them are JSON.
+            1 => "[-+]?[0-9.eE+-]{1,8}",
+            1 => proptest::sample::select(vec![
+                "-0", "0", "-0.0", "18446744073709551615", "18446744073709551616",
+                "-9223372036854775808", "-9223372036854775809", "1e400", "1e15",
+                "1000000000000000", "1000000000000001", "9007199254740993",
+                "1772439247000", "true", "false", "null", "nul", "[]", "[1,{\"a\":null}]",
+                "{}", "{\"a\":1e400}",
+            ])
+            .prop_map(str::to_string),
+            2 => proptest::sample::select(vec![
+                "harbour", "old-town", "uplands", "riverside", "airport-link", "tram",
+                "ferry", "bus", "2026-03-02T08:14:07Z", "2026-03-02T09:14:07.25+01:00",
+                "c-7f3a91", "", "42",
+            ])
+            .prop_map(|s| format!("\"{s}\"")),
+            1 => "\\PC{0,12}".prop_map(|s| serde_json::to_string(&s).expect("a string")),
+            1 => proptest::sample::select(vec![
+                r#""harb\u006fur""#, r#""\ud800""#, r#""a\"b""#, "\"a\u{1}\"", "\"é☃\"",
+            ])
+            .prop_map(str::to_string),
+        ]
+    }
+
+    fn whitespace_text() -> impl Strategy<Value = String> {
+        prop_oneof![4 => Just(String::new()), 1 => "[ \t\r\n]{1,3}", 1 => "[ \\x0c\\x00]"]
+    }
+
+    /// A line from pieces, then a few random byte edits (insert, delete, replace).
+    fn generated_line() -> impl Strategy<Value = Vec<u8>> {
+        let entry = (
+            whitespace_text(),
+            key_text(),
+            whitespace_text(),
+            value_text(),
+        );
+        let edit = (any::<proptest::sample::Index>(), 0u8..3, any::<u8>());
+        (
+            proptest::collection::vec(entry, 0..12),
+            whitespace_text(),
+            prop_oneof![3 => Just(Vec::new()), 1 => proptest::collection::vec(edit, 1..4)],
+        )
+            .prop_map(|(entries, tail, edits)| {
+                let body: Vec<String> = entries
+                    .iter()
+                    .map(|(w1, k, w2, v)| format!("{w1}{k}{w2}:{w2}{v}{w1}"))
+                    .collect();
+                let mut line = format!("{{{}}}{tail}", body.join(",")).into_bytes();
+                apply_edits(&mut line, &edits);
+                line
+            })
+    }
+
+    fn apply_edits(line: &mut Vec<u8>, edits: &[(proptest::sample::Index, u8, u8)]) {
+        for (at, kind, byte) in edits {
+            let at = at.index(line.len() + 1);
+            match kind {
+                0 => line.insert(at, *byte),
+                1 if at < line.len() => {
+                    line.remove(at);
+                }
+                _ if at < line.len() => line[at] = *byte,
+                _ => line.push(*byte),
+            }
+        }
+    }
+
+    proptest! {
+        #![proptest_config(ProptestConfig::with_cases(4000))]
+
+        /// `parse` (fast path with fallback) equals `parse_serde` (serde_json, the reference)
+        /// on generated lines, valid and broken, bit for bit.
+        #[test]
+        fn fast_and_serde_paths_agree_on_generated_lines(line in generated_line()) {
+            let parser = demo_parser();
+            let fast = parser.parse(&line, &test_hash);
+            let reference = parser.parse_serde(&line, &test_hash);
+            prop_assert!(
+                same_result(&fast, &reference),
+                "{:?}: parse {fast:?}, parse_serde {reference:?}",
+                String::from_utf8_lossy(&line)
+            );
+        }
+
+        /// The same on valid demo lines (every field's value drawn from the pieces) with
+        /// random byte edits.
+        #[test]
+        fn fast_and_serde_paths_agree_on_edited_demo_lines(
+            field in proptest::sample::select(vec![
+                "ts", "card", "zone", "mode", "fare_cents", "trip_km", "trip_minutes",
+                "transfers",
+            ]),
+            value in value_text(),
+            edits in proptest::collection::vec(
+                (any::<proptest::sample::Index>(), 0u8..3, any::<u8>()),
+                0..4,
+            ),
+        ) {
+            let mut line = with_field(field, Some(&value)).into_bytes();
+            apply_edits(&mut line, &edits);
+            let parser = demo_parser();
+            let fast = parser.parse(&line, &test_hash);
+            let reference = parser.parse_serde(&line, &test_hash);
+            prop_assert!(
+                same_result(&fast, &reference),
+                "{:?}: parse {fast:?}, parse_serde {reference:?}",
+                String::from_utf8_lossy(&line)
+            );
+        }
     }
 
     #[test]
