@@ -152,7 +152,8 @@ fn parse(c: &mut Criterion) {
             decoder.decode(black_box(&lines[i]))
         })
     });
-    // The floor's variant (examples/parse_floor.rs): the same parser with a trivial hash.
+    // With a trivial hash: `parse` (the fast path with its serde_json fallback, what replay
+    // uses) and `parse_serde` (serde_json alone, the floor of examples/parse_floor.rs).
     let trivial = |raw: &[u8]| {
         raw.iter()
             .fold(0u64, |h, b| h.rotate_left(8) ^ u64::from(*b))
@@ -161,6 +162,12 @@ fn parse(c: &mut Criterion) {
         b.iter(|| {
             i = (i + 1) % lines.len();
             decoder.parser().parse(black_box(&lines[i]), &trivial)
+        })
+    });
+    g.bench_function("parse_serde/demo_line/trivial_hash", |b| {
+        b.iter(|| {
+            i = (i + 1) % lines.len();
+            decoder.parser().parse_serde(black_box(&lines[i]), &trivial)
         })
     });
     g.finish();

@@ -13,7 +13,9 @@
 #
 # What is measured, per run, with GNU time (`/usr/bin/time -v`):
 #   floor   examples/parse_floor: read the file and deserialise every line with scrim's
-#           LineParser (serde_json visitor) into scrim's Event, one thread, nothing else
+#           LineParser::parse_serde (serde_json visitor) into scrim's Event, one thread,
+#           nothing else (replay parses with LineParser::parse, the faster fast path with
+#           identical results, so replay can approach or pass the floor)
 #   replay  scrim replay --config config/demo.toml --seed 1 --threads N  (N = 1 and 2)
 # events/s = feed lines / wall-clock seconds of the whole process; ratio = replay events/s
 # over floor events/s. Releases of --threads 1 and 2 are compared byte for byte.

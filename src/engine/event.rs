@@ -308,53 +308,84 @@ enum Slot {
 const CATEGORY_UNSEEN: u32 = u32::MAX;
 
 /// Exact-match lookup of names (schema keys, category values) by their bytes, built for the
-/// short names of a schema: open addressing over a hash of every byte, then the length and
-/// the bytes compared as little-endian `u64` words in an inline loop, so a lookup costs one
-/// hash and usually one comparison, calls no `memcmp`, and never allocates. The table is
-/// filled from configuration only, so line content cannot lengthen its probe chains.
+/// short names of a schema: open addressing over a hash of the name, then the length and
+/// two words compared as `u64`s (for names of up to 16 bytes these decide equality; longer
+/// names are then compared in 8-byte words), so a lookup costs one hash and usually one
+/// comparison, calls no `memcmp`, and never allocates. The table is filled from
+/// configuration only, so line content cannot lengthen its probe chains.
 #[derive(Debug)]
 struct NameTable<V> {
-    /// The names with their hash and value, in the order given.
-    entries: Vec<NameEntry<V>>,
-    /// Per bucket: 1 + an index into `entries`, or 0 for an empty bucket. A power-of-two
-    /// length at least twice the number of entries, so every probe sequence meets a 0.
-    buckets: Box<[usize]>,
-    /// `64 - log2(buckets.len())`: a hash's top bits pick its first bucket.
+    /// The names, in the order given (for the full comparison of long names).
+    names: Vec<Box<[u8]>>,
+    /// Open addressing, entries inline so a lookup reads one bucket: a power-of-two length
+    /// at least twice the number of names, so every probe sequence meets an empty bucket.
+    buckets: Box<[NameBucket<V>]>,
+    /// `64 - log2(buckets.len())`: a hash's top bits pick the first bucket.
     shift: u32,
 }
 
-#[derive(Debug)]
-struct NameEntry<V> {
-    name: Box<[u8]>,
-    hash: u64,
-    value: V,
+#[derive(Clone, Copy, Debug)]
+struct NameBucket<V> {
+    /// The name's length; [`EMPTY_BUCKET`] for an empty bucket.
+    len: usize,
+    /// [`name_words`] of the name.
+    words: (u64, u64),
+    /// Index into `NameTable::names`.
+    index: usize,
+    value: Option<V>,
 }
+
+/// The `len` of an empty bucket (no name is that long).
+const EMPTY_BUCKET: usize = usize::MAX;
 
 /// Knuth's multiplicative hashing constant, 2^64 divided by the golden ratio.
 const HASH_MULTIPLIER: u64 = 0x9e37_79b9_7f4a_7c15;
 
-/// Up to seven trailing bytes as a little-endian word, zero-padded.
-#[inline]
-fn tail_word(tail: &[u8]) -> u64 {
-    tail.iter()
-        .rev()
-        .fold(0u64, |word, &b| (word << 8) | u64::from(b))
-}
+/// Longest name whose length and [`name_words`] alone decide equality.
+const SHORT_NAME: usize = 16;
 
-/// A hash of every byte and the length (one multiply per 8 bytes).
+/// Two words that, together with the length, determine a name of up to [`SHORT_NAME`]
+/// bytes: the first and the last 8 (or 4) bytes, overlapping when the name is shorter than
+/// two of them, or three sampled bytes below 4 (the loads wyhash uses). Longer names share
+/// the words of their first and last 8 bytes and are told apart by [`same_bytes`].
 #[inline]
-fn name_hash(name: &[u8]) -> u64 {
-    let (words, tail) = name.as_chunks::<8>();
-    let mut h = name.len() as u64;
-    for word in words {
-        h = (h ^ u64::from_le_bytes(*word))
-            .wrapping_mul(HASH_MULTIPLIER)
-            .rotate_left(31);
+fn name_words(name: &[u8]) -> (u64, u64) {
+    let len = name.len();
+    if len >= 8 {
+        let first = name
+            .first_chunk::<8>()
+            .map_or(0, |w| u64::from_le_bytes(*w));
+        let last = name.last_chunk::<8>().map_or(0, |w| u64::from_le_bytes(*w));
+        (first, last)
+    } else if len >= 4 {
+        let first = name
+            .first_chunk::<4>()
+            .map_or(0, |w| u32::from_le_bytes(*w));
+        let last = name.last_chunk::<4>().map_or(0, |w| u32::from_le_bytes(*w));
+        (u64::from(first) | (u64::from(last) << 32), 0)
+    } else if let (Some(&a), Some(&b), Some(&c)) = (name.first(), name.get(len / 2), name.last()) {
+        (u64::from(a) | (u64::from(b) << 8) | (u64::from(c) << 16), 0)
+    } else {
+        (0, 0)
     }
-    (h ^ tail_word(tail)).wrapping_mul(HASH_MULTIPLIER)
 }
 
-/// Byte equality: length first, then 8-byte words, then the tail as one word.
+/// The bucket hash: the length and words, and for long names every byte.
+#[inline]
+fn name_hash(name: &[u8], (first, last): (u64, u64)) -> u64 {
+    let mut h = (name.len() as u64).wrapping_mul(HASH_MULTIPLIER) ^ first;
+    if name.len() > SHORT_NAME {
+        let (words, _) = name.as_chunks::<8>();
+        for word in words {
+            h = (h ^ u64::from_le_bytes(*word))
+                .wrapping_mul(HASH_MULTIPLIER)
+                .rotate_left(31);
+        }
+    }
+    (h ^ last.rotate_left(32)).wrapping_mul(HASH_MULTIPLIER)
+}
+
+/// Byte equality without `memcmp`: length first, then 8-byte words, then the tail.
 #[inline]
 fn same_bytes(a: &[u8], b: &[u8]) -> bool {
     if a.len() != b.len() {
@@ -364,7 +395,7 @@ fn same_bytes(a: &[u8], b: &[u8]) -> bool {
     wa.iter()
         .zip(wb)
         .all(|(x, y)| u64::from_le_bytes(*x) == u64::from_le_bytes(*y))
-        && tail_word(ta) == tail_word(tb)
+        && ta.iter().zip(tb).all(|(x, y)| x == y)
 }
 
 impl<V: Copy> NameTable<V> {
@@ -372,24 +403,38 @@ impl<V: Copy> NameTable<V> {
     fn new(names: Vec<(Box<str>, V)>) -> NameTable<V> {
         let n_buckets = (2 * names.len()).max(8).next_power_of_two();
         let shift = 64 - n_buckets.trailing_zeros();
-        let mut buckets = vec![0usize; n_buckets].into_boxed_slice();
+        let empty = NameBucket {
+            len: EMPTY_BUCKET,
+            words: (0, 0),
+            index: 0,
+            value: None,
+        };
+        let mut buckets = vec![empty; n_buckets].into_boxed_slice();
         let mask = n_buckets - 1;
-        let mut entries = Vec::with_capacity(names.len());
-        for (i, (name, value)) in names.into_iter().enumerate() {
+        let mut stored = Vec::with_capacity(names.len());
+        for (index, (name, value)) in names.into_iter().enumerate() {
             let name: Box<[u8]> = name.into_boxed_bytes();
-            let hash = name_hash(&name);
-            let mut b = (hash >> shift) as usize & mask;
+            let words = name_words(&name);
+            let mut b = (name_hash(&name, words) >> shift) as usize & mask;
             // Terminates: at most half of the buckets are ever taken.
-            while buckets.get(b).is_some_and(|&taken| taken != 0) {
+            while buckets
+                .get(b)
+                .is_some_and(|taken| taken.len != EMPTY_BUCKET)
+            {
                 b = (b + 1) & mask;
             }
             if let Some(bucket) = buckets.get_mut(b) {
-                *bucket = i + 1;
+                *bucket = NameBucket {
+                    len: name.len(),
+                    words,
+                    index,
+                    value: Some(value),
+                };
             }
-            entries.push(NameEntry { name, hash, value });
+            stored.push(name);
         }
         NameTable {
-            entries,
+            names: stored,
             buckets,
             shift,
         }
@@ -398,14 +443,24 @@ impl<V: Copy> NameTable<V> {
     /// The value of `name`, if it is in the table (exact byte match).
     #[inline]
     fn get(&self, name: &[u8]) -> Option<V> {
-        let hash = name_hash(name);
+        let words = name_words(name);
         let mask = self.buckets.len() - 1;
-        let mut b = (hash >> self.shift) as usize & mask;
+        let mut b = (name_hash(name, words) >> self.shift) as usize & mask;
         loop {
-            // An empty bucket (0) ends the probe sequence; one exists (see `buckets`).
-            let entry = self.entries.get(self.buckets.get(b)?.checked_sub(1)?)?;
-            if entry.hash == hash && same_bytes(&entry.name, name) {
-                return Some(entry.value);
+            // An empty bucket ends the probe sequence; one exists (see `buckets`).
+            let bucket = self.buckets.get(b)?;
+            if bucket.len == EMPTY_BUCKET {
+                return None;
+            }
+            if bucket.words == words
+                && bucket.len == name.len()
+                && (name.len() <= SHORT_NAME
+                    || self
+                        .names
+                        .get(bucket.index)
+                        .is_some_and(|stored| same_bytes(stored, name)))
+            {
+                return bucket.value;
             }
             b = (b + 1) & mask;
         }
@@ -414,7 +469,7 @@ impl<V: Copy> NameTable<V> {
 
 /// Parses lines against one [`Schema`]; built once, shared by reference.
 ///
-/// Lookups are [`NameTable`]s: key names and category values are matched as bytes borrowed
+/// Lookups are `NameTable`s: key names and category values are matched as bytes borrowed
 /// from the line (never allocating), by hash, length and 8-byte words.
 #[derive(Debug)]
 pub struct LineParser {
@@ -795,6 +850,30 @@ const STRING_STOP: [bool; 256] = {
     table
 };
 
+/// The position of the first [`STRING_STOP`] byte, eight bytes at a time (SWAR: a byte is
+/// found by the borrow of a per-byte subtraction; a false mark can only follow a true one,
+/// so the lowest mark is exact), the last few bytes one at a time.
+#[inline]
+fn string_stop(bytes: &[u8]) -> Option<usize> {
+    const ONES: u64 = 0x0101_0101_0101_0101;
+    const HIGHS: u64 = 0x8080_8080_8080_8080;
+    let (words, tail) = bytes.as_chunks::<8>();
+    for (i, word) in words.iter().enumerate() {
+        let w = u64::from_le_bytes(*word);
+        let quote = w ^ (ONES * u64::from(b'"'));
+        let backslash = w ^ (ONES * u64::from(b'\\'));
+        let marks = (quote.wrapping_sub(ONES) & !quote)
+            | (backslash.wrapping_sub(ONES) & !backslash)
+            | (w.wrapping_sub(ONES * 0x20) & !w);
+        let marks = marks & HIGHS;
+        if marks != 0 {
+            return Some(8 * i + (marks.trailing_zeros() / 8) as usize);
+        }
+    }
+    let at = tail.iter().position(|&b| STRING_STOP[usize::from(b)])?;
+    Some(8 * words.len() + at)
+}
+
 /// 10^0 ..= 10^22, each exact in binary64 (5^22 < 2^53), for Clinger's fast path.
 const POW10: [f64; 23] = [
     1e0, 1e1, 1e2, 1e3, 1e4, 1e5, 1e6, 1e7, 1e8, 1e9, 1e10, 1e11, 1e12, 1e13, 1e14, 1e15, 1e16,
@@ -963,10 +1042,7 @@ impl<'a> FastLine<'a> {
         self.eat(b'"')?;
         let start = self.pos;
         let rest = self.text.as_bytes().get(start..).ok_or(GiveUp)?;
-        let len = rest
-            .iter()
-            .position(|&b| STRING_STOP[usize::from(b)])
-            .ok_or(GiveUp)?;
+        let len = string_stop(rest).ok_or(GiveUp)?;
         if rest.get(len) != Some(&b'"') {
             return Err(GiveUp);
         }
@@ -2366,6 +2442,36 @@ mod tests {
             assert!(same_result(&fast, &reference), "{line}");
             assert_eq!(fast_calls, reference_calls, "{line}");
             assert!(fast_calls.len() <= 1, "{line}");
+        }
+    }
+
+    #[test]
+    fn string_stop_finds_the_first_quote_backslash_or_control_byte() {
+        // The byte loop over STRING_STOP is the reference for the eight-byte scan.
+        let reference = |b: &[u8]| b.iter().position(|&x| STRING_STOP[usize::from(x)]);
+        let mut cases: Vec<Vec<u8>> = vec![b"".to_vec(), b"abc".to_vec(), b"harbour\"".to_vec()];
+        for len in 0..24 {
+            for stop in [b'"', b'\\', 0x00, 0x1f, 0x01] {
+                for at in 0..len {
+                    let mut v: Vec<u8> = (0..len).map(|i| b'a' + (i % 26) as u8).collect();
+                    v[at] = stop;
+                    // Bytes just around the stop classes must not be marked.
+                    if at + 1 < len {
+                        v[at + 1] = [0x20, 0x21, 0x5b, 0x5d, 0xff, 0x80][at % 6];
+                    }
+                    cases.push(v);
+                }
+            }
+            cases.push(
+                (0..len)
+                    .map(|i| 0x20 + (i % 0x60) as u8)
+                    .filter(|&b| b != b'"' && b != b'\\')
+                    .collect(),
+            );
+            cases.push(vec![0xc3; len]);
+        }
+        for case in &cases {
+            assert_eq!(string_stop(case), reference(case), "{case:?}");
         }
     }
 
