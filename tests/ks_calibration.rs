@@ -605,7 +605,7 @@ fn calibrate(mechanism: &str) {
                         entry.z.push(z(*v, stats.std_error, *t));
                     }
                     // The coefficients' allowance, once per scope (the truth is fixed).
-                    if !first_order.contains_key(&rec.scope) {
+                    if !first_order.contains_key(rec.scope.as_str()) {
                         // Normal equations of (1, x) in normalised units: packed indices
                         // (0,0)=0 (0,1)=1 (0,2)=2 (0,y)=3 (1,1)=4 (1,2)=5 (1,y)=6 (2,2)=7 (2,y)=8.
                         let m = |i: usize| truth[i];
@@ -641,12 +641,12 @@ fn calibrate(mechanism: &str) {
                                 .allowance = allowance;
                         }
                         let sd_value: Vec<f64> = sd.iter().zip(back).map(|(s, f)| s * f).collect();
-                        first_order.insert(rec.scope.clone(), (sd_value, u));
+                        first_order.insert(rec.scope.to_string(), (sd_value, u));
                     }
                     // The reported std_error is the delta method at the noisy estimate: within
                     // the relative bound u of the first-order sd at the truth (see
                     // `coefficient_allowances`; fails with probability ≤ e^-25 per record).
-                    let (sd_value, u) = &first_order[&rec.scope];
+                    let (sd_value, u) = &first_order[rec.scope.as_str()];
                     for (j, name) in ["intercept", "x1", "x2"].iter().enumerate() {
                         let se = rec.std_error[name].as_f64().expect("std_error is a number");
                         let ratio = se / sd_value[j];

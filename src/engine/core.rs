@@ -17,6 +17,8 @@
 use std::collections::{BTreeMap, VecDeque};
 use std::sync::Arc;
 
+use smallvec::SmallVec;
+
 use crate::config::Config;
 use crate::engine::bound::Bounder;
 use crate::engine::contribution::{Contribution, Contributor};
@@ -24,10 +26,10 @@ use crate::engine::dd::Dd;
 use crate::engine::event::{Event, LineParser, RejectReason, Rejection, Schema};
 use crate::engine::ledger::{BudgetError, EpochCharge, Ledger};
 use crate::engine::linear;
-use crate::engine::mechanism::{self, ContinualMechanism, NodeAddr, NodeNoise};
+use crate::engine::mechanism::{self, ContinualMechanism, Estimate, NodeAddr, NodeNoise};
 use crate::engine::noise::{self, KeyedHash64, NoiseId, NoiseKey};
 use crate::engine::plan::{ComponentRole, Plan, PlanError, PrivacyLevel, Scope, StatPlan};
-use crate::engine::release::{self, Guarantee, Release, Statistics};
+use crate::engine::release::{self, Guarantee, Release, SharedStr, Statistics};
 use crate::engine::time::Millis;
 
 /// Options that change what the engine keeps; none of them weakens the guarantee of
@@ -189,7 +191,7 @@ pub struct Engine {
     counters: Counters,
     outbox: VecDeque<Release>,
     next_seq: u64,
-    guarantee: Guarantee,
+    guarantee: Arc<Guarantee>,
 }
 
 impl Engine {
@@ -272,7 +274,7 @@ impl Engine {
             counters: Counters::default(),
             outbox: VecDeque::new(),
             next_seq: carry.next_seq,
-            guarantee,
+            guarantee: Arc::new(guarantee),
             plan,
         })
     }
@@ -607,41 +609,53 @@ impl Engine {
                 }
             }
         }
-        // 2. Estimates for every scope, as records.
+        // 2. Estimates for every scope, as records. Room for all of them at once: with many
+        // groups the outbox would otherwise grow (and copy itself) by doubling.
+        self.outbox.reserve(
+            self.plan
+                .stats
+                .iter()
+                .map(|s| s.groups.len() * s.scopes.len())
+                .sum(),
+        );
         let origin = self.origin.unwrap_or(w);
         let epoch_start =
             origin + ((epoch - self.epoch_base) * u64::from(self.plan.epoch_windows)) as i64;
         for (si, s) in self.plan.stats.iter().enumerate() {
-            // A scope's window bounds are the same for every group: format them once per
-            // close (per record they were a third of closing 100,000 groups, issue 9).
-            let bounds: Vec<(String, String)> = s
+            // What records share is built once per close and shared (reference counts, not
+            // copies): strings per record were most of closing 100,000 groups (issue 9).
+            let stat = SharedStr::from(s.name.as_str());
+            let kind = SharedStr::from(s.kind);
+            let scopes: Vec<(SharedStr, SharedStr, SharedStr)> = s
                 .scopes
                 .iter()
                 .map(|scope| {
                     let range = scope.range(leaf);
                     let start = Millis((epoch_start + i64::from(range.first)) * self.window_ms);
                     let end = Millis((epoch_start + i64::from(range.last) + 1) * self.window_ms);
-                    (start.to_rfc3339(), end.to_rfc3339())
+                    (
+                        scope.label().into(),
+                        start.to_rfc3339().into(),
+                        end.to_rfc3339().into(),
+                    )
                 })
                 .collect();
             for g in 0..s.groups.len() {
                 // The group's keys as a record field, built once for all its scopes.
-                let group: BTreeMap<String, String> = s
-                    .groups
-                    .keys_of(g)
-                    .into_iter()
-                    .map(|(f, k)| (f.to_string(), k.to_string()))
-                    .collect();
-                for (scope, (start, end)) in s.scopes.iter().zip(&bounds) {
+                let group: Arc<BTreeMap<String, String>> = Arc::new(
+                    s.groups
+                        .keys_of(g)
+                        .into_iter()
+                        .map(|(f, k)| (f.to_string(), k.to_string()))
+                        .collect(),
+                );
+                for (scope, (label, start, end)) in s.scopes.iter().zip(&scopes) {
                     let range = scope.range(leaf);
                     let series = &state.series[si];
-                    let est: Vec<(Vec<Dd>, f64)> = series
+                    let est: SmallVec<[Estimate; 2]> = series
                         .mechs
                         .iter()
-                        .map(|per_group| {
-                            let e = per_group[g].estimate(range);
-                            (e.value, e.variance)
-                        })
+                        .map(|per_group| per_group[g].estimate(range))
                         .collect();
                     let truth: Option<Vec<Vec<Dd>>> = series.truth.as_ref().map(|t| {
                         t.iter()
@@ -659,17 +673,21 @@ impl Engine {
                             })
                             .collect()
                     });
-                    let mut rec =
-                        render(s, &est, truth.as_deref(), &self.key, epoch, leaf, g, scope);
-                    rec.seq = self.next_seq;
+                    let head = RecordHead {
+                        seq: self.next_seq,
+                        stat: stat.clone(),
+                        kind: kind.clone(),
+                        scope: label.clone(),
+                        group: group.clone(),
+                        window_start: start.clone(),
+                        window_end: end.clone(),
+                        epoch,
+                        leaf,
+                        guarantee: self.guarantee.clone(),
+                        seeded: self.opts.seeded,
+                    };
                     self.next_seq += 1;
-                    rec.group = group.clone();
-                    rec.window_start = start.clone();
-                    rec.window_end = end.clone();
-                    rec.epoch = epoch;
-                    rec.leaf = leaf;
-                    rec.guarantee = self.guarantee.clone();
-                    rec.seeded = self.opts.seeded;
+                    let rec = render(s, &est, truth.as_deref(), &self.key, head, g, scope);
                     self.outbox.push_back(rec);
                 }
             }
@@ -809,40 +827,46 @@ impl WindowAgg {
     }
 }
 
-/// Turns the per-component estimates of one (stat, group, scope) into a record body.
-#[allow(clippy::too_many_arguments)]
-fn render(
-    s: &StatPlan,
-    est: &[(Vec<Dd>, f64)],
-    truth: Option<&[Vec<Dd>]>,
-    key: &NoiseKey,
+/// The fields of a record that do not depend on its estimate.
+struct RecordHead {
+    seq: u64,
+    stat: SharedStr,
+    kind: SharedStr,
+    scope: SharedStr,
+    group: Arc<BTreeMap<String, String>>,
+    window_start: SharedStr,
+    window_end: SharedStr,
     epoch: u64,
     leaf: u32,
+    guarantee: Arc<Guarantee>,
+    seeded: bool,
+}
+
+/// Turns the per-component estimates of one (stat, group, scope) into a record.
+fn render(
+    s: &StatPlan,
+    est: &[Estimate],
+    truth: Option<&[Vec<Dd>]>,
+    key: &NoiseKey,
+    head: RecordHead,
     group: usize,
     scope: &Scope,
 ) -> Release {
+    let (epoch, leaf) = (head.epoch, head.leaf);
     let mut rec = Release {
-        seq: 0,
-        stat: s.name.clone(),
-        kind: s.kind.to_string(),
-        scope: scope.label(),
-        group: BTreeMap::new(),
-        window_start: String::new(),
-        window_end: String::new(),
+        seq: head.seq,
+        stat: head.stat,
+        kind: head.kind,
+        scope: head.scope,
+        group: head.group,
+        window_start: head.window_start,
+        window_end: head.window_end,
         value: serde_json::Value::Null,
         std_error: serde_json::Value::Null,
         epoch,
         leaf,
-        guarantee: Guarantee {
-            unit: None,
-            level: String::new(),
-            rho: 0.0,
-            lifetime_rho: None,
-            epsilon: 0.0,
-            delta: 0.0,
-            mechanism: String::new(),
-        },
-        seeded: false,
+        guarantee: head.guarantee,
+        seeded: head.seeded,
         note: None,
         supersedes: None,
         statistics: None,
@@ -854,8 +878,8 @@ fn render(
         "count" | "sum" => {
             let c = &s.components[0];
             let q = c.quantum();
-            rec.value = release::number(est[0].0[0].to_f64() * q);
-            rec.std_error = release::number(est[0].1.sqrt() * q);
+            rec.value = release::number(est[0].value[0].to_f64() * q);
+            rec.std_error = release::number(est[0].variance.sqrt() * q);
             rec.truth = truth.map(|t| release::number(t[0][0].to_f64() * q));
         }
         "mean" => {
@@ -871,14 +895,14 @@ fn render(
                     None
                 }
             };
-            let sum = est[0].0[0].to_f64() * sum_c.quantum();
-            let cnt = est[1].0[0].to_f64() * cnt_c.quantum();
+            let sum = est[0].value[0].to_f64() * sum_c.quantum();
+            let cnt = est[1].value[0].to_f64() * cnt_c.quantum();
             match ratio(sum, cnt) {
                 Some(v) => {
                     // Delta method for a ratio of independent noisy terms (common practice):
                     // Var(mid + S/C) ≈ (Var S + (S/C)² Var C) / C².
-                    let var_s = est[0].1 * sum_c.quantum().powi(2);
-                    let var_c = est[1].1 * cnt_c.quantum().powi(2);
+                    let var_s = est[0].variance * sum_c.quantum().powi(2);
+                    let var_c = est[1].variance * cnt_c.quantum().powi(2);
                     let r = sum / cnt;
                     rec.value = release::number(v);
                     rec.std_error = release::number(((var_s + r * r * var_c) / (cnt * cnt)).sqrt());
@@ -906,7 +930,7 @@ fn render(
 #[allow(clippy::too_many_arguments)]
 fn render_linear(
     s: &StatPlan,
-    est: &[(Vec<Dd>, f64)],
+    est: &[Estimate],
     truth: Option<&[Vec<Dd>]>,
     key: &NoiseKey,
     epoch: u64,
@@ -971,8 +995,8 @@ fn render_linear(
     );
     rec.statistics = Some(Statistics {
         names: layout.coordinate_names(&s.features, &s.target),
-        values: est[0].0.iter().map(|v| v.to_f64() * q).collect(),
-        std_error: est[0].1.sqrt() * q,
+        values: est[0].value.iter().map(|v| v.to_f64() * q).collect(),
+        std_error: est[0].variance.sqrt() * q,
         scales,
         centres,
     });
@@ -1003,8 +1027,8 @@ fn render_linear(
     };
     match linear::fit_shifted(
         layout,
-        &est[0].0,
-        est[0].1,
+        &est[0].value,
+        est[0].variance,
         c.grid_exp,
         &method,
         shift.as_ref(),

@@ -5,9 +5,107 @@
 //! from an [`EpochCharge`](crate::engine::ledger::EpochCharge), i.e. only after the epoch's
 //! budget was charged, and never changes once published.
 
+use std::borrow::Borrow;
 use std::collections::BTreeMap;
+use std::fmt;
+use std::ops::Deref;
+use std::sync::Arc;
 
-use serde::{Deserialize, Serialize};
+use serde::{Deserialize, Deserializer, Serialize, Serializer};
+
+/// An immutable string shared between records: one window close gives every group a
+/// record with the same statistic name, kind, scope label and window bounds, and cloning
+/// this costs a reference count instead of an allocation (issue 9: per-record string
+/// copies were most of closing a window with 100,000 groups). It serialises and compares
+/// exactly as the string it holds.
+#[derive(Clone, PartialEq, Eq, PartialOrd, Ord, Hash)]
+pub struct SharedStr(Arc<str>);
+
+impl SharedStr {
+    /// The text.
+    pub fn as_str(&self) -> &str {
+        &self.0
+    }
+}
+
+impl Deref for SharedStr {
+    type Target = str;
+    fn deref(&self) -> &str {
+        &self.0
+    }
+}
+
+impl Borrow<str> for SharedStr {
+    fn borrow(&self) -> &str {
+        &self.0
+    }
+}
+
+impl AsRef<str> for SharedStr {
+    fn as_ref(&self) -> &str {
+        &self.0
+    }
+}
+
+impl From<&str> for SharedStr {
+    fn from(s: &str) -> Self {
+        SharedStr(Arc::from(s))
+    }
+}
+
+impl From<String> for SharedStr {
+    fn from(s: String) -> Self {
+        SharedStr(Arc::from(s))
+    }
+}
+
+impl From<SharedStr> for String {
+    fn from(s: SharedStr) -> Self {
+        s.0.to_string()
+    }
+}
+
+impl PartialEq<str> for SharedStr {
+    fn eq(&self, other: &str) -> bool {
+        *self.0 == *other
+    }
+}
+
+impl PartialEq<&str> for SharedStr {
+    fn eq(&self, other: &&str) -> bool {
+        *self.0 == **other
+    }
+}
+
+impl PartialEq<String> for SharedStr {
+    fn eq(&self, other: &String) -> bool {
+        *self.0 == **other
+    }
+}
+
+impl fmt::Display for SharedStr {
+    fn fmt(&self, f: &mut fmt::Formatter<'_>) -> fmt::Result {
+        f.write_str(&self.0)
+    }
+}
+
+impl fmt::Debug for SharedStr {
+    fn fmt(&self, f: &mut fmt::Formatter<'_>) -> fmt::Result {
+        fmt::Debug::fmt(&*self.0, f)
+    }
+}
+
+impl Serialize for SharedStr {
+    fn serialize<S: Serializer>(&self, serializer: S) -> Result<S::Ok, S::Error> {
+        serializer.serialize_str(&self.0)
+    }
+}
+
+impl<'de> Deserialize<'de> for SharedStr {
+    fn deserialize<D: Deserializer<'de>>(deserializer: D) -> Result<Self, D::Error> {
+        String::deserialize(deserializer).map(SharedStr::from)
+    }
+}
 
 /// The privacy guarantee that covers one record.
 #[derive(Clone, Debug, PartialEq, Serialize, Deserialize)]
@@ -51,17 +149,17 @@ pub struct Release {
     /// Strictly increasing across restarts.
     pub seq: u64,
     /// Statistic name.
-    pub stat: String,
+    pub stat: SharedStr,
     /// `count`, `sum`, `mean` or `linear`.
-    pub kind: String,
+    pub kind: SharedStr,
     /// `window`, `epoch_to_date` or `trailing:N`.
-    pub scope: String,
-    /// Group keys (empty when ungrouped).
-    pub group: BTreeMap<String, String>,
+    pub scope: SharedStr,
+    /// Group keys (empty when ungrouped), shared by the group's records of one close.
+    pub group: Arc<BTreeMap<String, String>>,
     /// Start of the span (RFC 3339, UTC).
-    pub window_start: String,
+    pub window_start: SharedStr,
     /// End of the span, exclusive.
-    pub window_end: String,
+    pub window_end: SharedStr,
     /// Released estimate: a number; `null` for an undefined mean; an object for linear.
     pub value: serde_json::Value,
     /// Standard deviation of the estimate's noise, same shape as `value`.
@@ -70,8 +168,8 @@ pub struct Release {
     pub epoch: u64,
     /// Leaf (window) index within the epoch of the window that triggered the release.
     pub leaf: u32,
-    /// The guarantee.
-    pub guarantee: Guarantee,
+    /// The guarantee (one per engine, shared by its records).
+    pub guarantee: Arc<Guarantee>,
     /// True when the noise came from a fixed seed (tests and replays only): not private.
     pub seeded: bool,
     /// Why a value is null, or how `std_error` was computed when it is approximate.

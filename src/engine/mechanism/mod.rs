@@ -113,8 +113,9 @@ pub trait NodeNoise {
 /// A noisy estimate of a range sum, in grid units.
 #[derive(Clone, Debug, PartialEq)]
 pub struct Estimate {
-    /// One value per coordinate of the leaf vectors.
-    pub value: Vec<Dd>,
+    /// One value per coordinate of the leaf vectors (inline for scalar series, which
+    /// are most of them: one allocation fewer per released record).
+    pub value: smallvec::SmallVec<[Dd; 1]>,
     /// Exact variance of each coordinate's noise, grid units² (the same for every
     /// coordinate because every coordinate gets noise of the same variance).
     pub variance: f64,

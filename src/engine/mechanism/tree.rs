@@ -336,7 +336,7 @@ impl ContinualMechanism for TreeMechanism {
             self.n_leaves,
             retained_from(self.n_leaves, self.max_trailing),
         );
-        let mut value = vec![Dd::ZERO; self.dim];
+        let mut value: Coords<Dd> = smallvec::smallvec![Dd::ZERO; self.dim];
         for_each_term(self.n_leaves, range, |term| {
             // Both are small exact integers; one double-double division per term.
             let ratio = Dd::from_f64(term.coefficient()) / Dd::from_f64(term.denominator());
