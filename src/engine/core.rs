@@ -508,8 +508,9 @@ impl Engine {
             .unwrap_or_else(|| WindowAgg::empty(&self.plan));
         if let Some(b) = &mut self.bounder {
             let contributor = &self.contributor;
-            self.counters.dropped_window_bound +=
-                b.close_with(w, epoch, |c| contributor.add(c, &mut agg.values));
+            let dropped = b.close_with(w, epoch, |c| contributor.add(c, &mut agg.values));
+            self.counters.dropped_event_bound += dropped.by_event_cap;
+            self.counters.dropped_window_bound += dropped.by_window_cap;
         }
 
         if self
