@@ -88,7 +88,8 @@ pub struct Counters {
     pub rejected: BTreeMap<&'static str, u64>,
     /// Events whose window had already closed.
     pub late: u64,
-    /// Events dropped by the per-window event bound.
+    /// Events dropped by the per-window event bound. The bounder decides when the window
+    /// closes (or when it compacts the window's buffer), so the count catches up by then.
     pub dropped_event_bound: u64,
     /// Events dropped by the per-epoch window bound.
     pub dropped_window_bound: u64,

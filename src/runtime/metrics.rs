@@ -71,7 +71,7 @@ impl Metrics {
         let dropped = must(IntCounterVec::new(
             Opts::new(
                 "scrim_bounded_events_total",
-                "Accepted events dropped by contribution bounds",
+                "Accepted events dropped by contribution bounds (counted by the time their window closes)",
             ),
             &["bound"],
         ));
