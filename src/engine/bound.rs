@@ -5,7 +5,7 @@
 //! Removing one unit from the input must change only that unit's own contribution
 //! (privacy-math §8, [D]). Every decision here looks at one unit's own events only:
 //!
-//! - **Events per window.** Each event gets a priority, a keyed hash of the unit and the
+//! - **Events per window.** Each event has a priority, a keyed hash of the unit and the
 //!   event's content (time, categories, numbers). The `k` events with the smallest
 //!   priorities survive (bottom-k sampling). The priority does not depend on arrival
 //!   order or on other units, and being a keyed pseudo-random function of the content it is
@@ -29,13 +29,11 @@ use std::hash::{BuildHasherDefault, Hasher};
 
 use crate::engine::event::Event;
 
-/// One buffered event's bounding key; `seq` indexes [`WindowBuffer::events`] and grows with
-/// arrival, so sorting keys by `(unit, priority, seq)` lists each unit's events from the
-/// smallest priority, earlier arrivals first among equal priorities.
+/// One buffered event's key; `seq` indexes [`WindowBuffer::events`] and grows with
+/// arrival, so sorting keys lists each unit's events in arrival order.
 #[derive(Clone, Copy, Debug, PartialEq, Eq, PartialOrd, Ord)]
 struct Key {
     unit: u64,
-    priority: u64,
     seq: u32,
 }
 
@@ -45,15 +43,19 @@ const MIN_COMPACT_AT: usize = 4096;
 /// The buffered events of one open window. Offering an event only appends its key and
 /// its payload (sequential writes: no per-unit lookup, which cost a cache miss per event,
 /// issue 9); the bottom-k choice is made by sorting the keys, at close and whenever the
-/// buffer reaches `compact_at`. A compaction keeps each unit's `k` smallest keys, frees the
-/// rest and sets `compact_at` to twice what it kept (at least [`MIN_COMPACT_AT`]), so the
-/// buffer never holds more than about twice `k` events per unit plus a constant, whatever
-/// the event rate, and the sorting costs O(log n) per event amortised.
+/// buffer reaches `compact_at`. A compaction keeps each unit's `k` smallest priorities,
+/// frees the rest and sets `compact_at` to twice what it kept (at least
+/// [`MIN_COMPACT_AT`]), so the buffer never holds more than about twice `k` events per
+/// unit plus a constant, whatever the event rate, and the sorting costs O(log n) per event
+/// amortised. Priorities are computed only for units with more than `k` events buffered:
+/// the others keep every event whatever their priorities.
 #[derive(Debug)]
 struct WindowBuffer<T> {
     keys: Vec<Key>,
     events: Vec<T>,
     compact_at: usize,
+    /// Scratch for one unit's `(priority, seq)` pairs.
+    run: Vec<(u64, u32)>,
 }
 
 impl<T> WindowBuffer<T> {
@@ -62,6 +64,7 @@ impl<T> WindowBuffer<T> {
             keys: Vec::new(),
             events: Vec::new(),
             compact_at: compact_floor,
+            run: Vec::new(),
         }
     }
 
@@ -71,24 +74,49 @@ impl<T> WindowBuffer<T> {
         self.compact_at = compact_floor;
     }
 
-    /// Sorts the keys by `(unit, priority, seq)` and calls `each(key, rank)` for every key,
-    /// with `rank` the key's position among its unit's keys (0 = smallest priority).
-    fn ranked(&mut self, mut each: impl FnMut(&Key, usize)) {
+    /// Calls `each(unit, seq, rank)` for every buffered event, unit by unit, with `rank`
+    /// the event's position among its unit's events by `(priority, seq)` (0 = smallest
+    /// priority; earlier arrivals first among equal priorities) when the unit has more
+    /// than `k` events, and its arrival position otherwise (all below `k`, so all survive
+    /// whatever the priorities: they are not computed).
+    fn ranked(
+        &mut self,
+        k: usize,
+        priority: &impl Fn(&T) -> u64,
+        mut each: impl FnMut(u64, u32, usize),
+    ) {
         self.keys.sort_unstable();
-        let mut rank = 0;
-        let mut prev = None;
-        for key in &self.keys {
-            rank = if prev == Some(key.unit) { rank + 1 } else { 0 };
-            prev = Some(key.unit);
-            each(key, rank);
+        let keys = &self.keys;
+        let mut start = 0;
+        while start < keys.len() {
+            let unit = keys[start].unit;
+            let end = start + keys[start..].partition_point(|key| key.unit == unit);
+            let group = &keys[start..end];
+            if group.len() <= k {
+                for (rank, key) in group.iter().enumerate() {
+                    each(unit, key.seq, rank);
+                }
+            } else {
+                self.run.clear();
+                self.run.extend(
+                    group
+                        .iter()
+                        .map(|key| (priority(&self.events[key.seq as usize]), key.seq)),
+                );
+                self.run.sort_unstable();
+                for (rank, &(_, seq)) in self.run.iter().enumerate() {
+                    each(unit, seq, rank);
+                }
+            }
+            start = end;
         }
     }
 
     /// Drops every event beyond its unit's `k` smallest keys; returns how many it dropped.
     /// The survivors keep their arrival order (and so their tie order).
-    fn compact(&mut self, k: usize, compact_floor: usize) -> u64 {
+    fn compact(&mut self, k: usize, compact_floor: usize, priority: &impl Fn(&T) -> u64) -> u64 {
         let mut keep = vec![false; self.events.len()];
-        self.ranked(|key, rank| keep[key.seq as usize] = rank < k);
+        self.ranked(k, priority, |_, seq, rank| keep[seq as usize] = rank < k);
         let before = self.events.len();
         let mut flags = keep.iter();
         self.events
@@ -207,8 +235,16 @@ impl<T> Bounder<T> {
     /// Offers an event of `unit` for window `window_idx`. Returns the number of events of
     /// that window dropped by the per-window bound now (by a compaction of its buffer, see
     /// [`WindowBuffer`]); the others are counted when the window closes. Which events
-    /// survive does not depend on when compactions happen.
-    pub fn offer(&mut self, window_idx: i64, unit: u64, priority: u64, event: T) -> u64 {
+    /// survive does not depend on when compactions happen. `priority` gives an event's
+    /// bounding priority (see the module notes); it is called only for units with more
+    /// than `k` events in the window, and must be a function of the event alone.
+    pub fn offer(
+        &mut self,
+        window_idx: i64,
+        unit: u64,
+        event: T,
+        priority: impl Fn(&T) -> u64,
+    ) -> u64 {
         let (spare, floor) = (&mut self.spare, self.compact_floor);
         let window = self
             .open
@@ -219,27 +255,29 @@ impl<T> Bounder<T> {
         let Ok(seq) = u32::try_from(window.events.len()) else {
             return 1;
         };
-        window.keys.push(Key {
-            unit,
-            priority,
-            seq,
-        });
+        window.keys.push(Key { unit, seq });
         window.events.push(event);
         if window.events.len() >= window.compact_at {
-            window.compact(self.max_events_per_window, floor)
+            window.compact(self.max_events_per_window, floor, &priority)
         } else {
             0
         }
     }
 
     /// Closes window `window_idx`, which belongs to `epoch`; windows must be closed in
-    /// increasing order. Applies the per-epoch window cap.
-    pub fn close(&mut self, window_idx: i64, epoch: u64) -> ClosedWindow<T>
+    /// increasing order. Applies the per-epoch window cap. `priority` as for
+    /// [`Bounder::offer`].
+    pub fn close(
+        &mut self,
+        window_idx: i64,
+        epoch: u64,
+        priority: impl Fn(&T) -> u64,
+    ) -> ClosedWindow<T>
     where
         T: Clone,
     {
         let mut kept = Vec::new();
-        let dropped = self.close_with(window_idx, epoch, |ev| kept.push(ev.clone()));
+        let dropped = self.close_with(window_idx, epoch, priority, |ev| kept.push(ev.clone()));
         ClosedWindow {
             kept,
             dropped_by_event_cap: dropped.by_event_cap,
@@ -249,7 +287,13 @@ impl<T> Bounder<T> {
 
     /// [`Bounder::close`] without collecting: hands every surviving event to `keep` (in no
     /// particular order) and returns the numbers dropped by each bound.
-    pub fn close_with(&mut self, window_idx: i64, epoch: u64, mut keep: impl FnMut(&T)) -> Dropped {
+    pub fn close_with(
+        &mut self,
+        window_idx: i64,
+        epoch: u64,
+        priority: impl Fn(&T) -> u64,
+        mut keep: impl FnMut(&T),
+    ) -> Dropped {
         if self.epoch != Some(epoch) {
             self.windows_used.clear();
             self.windows_used.shrink_to_fit();
@@ -266,10 +310,10 @@ impl<T> Bounder<T> {
         // Decide on the sorted keys, then hand over the survivors in arrival order: the
         // payloads are read front to back rather than in key order (issue 9).
         let mut keep_seq = vec![false; window.events.len()];
-        window.ranked(|key, rank| {
+        window.ranked(k, &priority, |unit, seq, rank| {
             if rank == 0 {
-                // The unit's first key: does this window count for it?
-                let used = windows_used.entry(key.unit).or_insert(0);
+                // The unit's first event: does this window count for it?
+                let used = windows_used.entry(unit).or_insert(0);
                 admitted = *used < m;
                 if admitted {
                     *used += 1;
@@ -278,7 +322,7 @@ impl<T> Bounder<T> {
             if rank >= k {
                 dropped.by_event_cap += 1;
             } else if admitted {
-                keep_seq[key.seq as usize] = true;
+                keep_seq[seq as usize] = true;
             } else {
                 dropped.by_window_cap += 1;
             }
@@ -317,6 +361,26 @@ mod tests {
     use super::*;
     use crate::engine::time::Millis;
 
+    /// Test payload: the event with its priority.
+    type P = (u64, Event);
+
+    fn prio(p: &P) -> u64 {
+        p.0
+    }
+
+    fn offer(b: &mut Bounder<P>, w: i64, unit: u64, priority: u64, e: Event) -> u64 {
+        b.offer(w, unit, (priority, e), prio)
+    }
+
+    fn close(b: &mut Bounder<P>, w: i64, epoch: u64) -> ClosedWindow<Event> {
+        let c = b.close(w, epoch, prio);
+        ClosedWindow {
+            kept: c.kept.into_iter().map(|p| p.1).collect(),
+            dropped_by_event_cap: c.dropped_by_event_cap,
+            dropped_by_window_cap: c.dropped_by_window_cap,
+        }
+    }
+
     fn ev(t: i64, v: f64) -> Event {
         Event {
             time: Millis(t),
@@ -332,21 +396,48 @@ mod tests {
         let mut a = Bounder::new(3, 10);
         let mut dropped = 0;
         for (i, p) in prios.iter().enumerate() {
-            dropped += a.offer(0, 7, *p, ev(i as i64, *p as f64));
+            dropped += offer(&mut a, 0, 7, *p, ev(i as i64, *p as f64));
         }
         let mut b = Bounder::new(3, 10);
         for (i, p) in prios.iter().enumerate().rev() {
-            b.offer(0, 7, *p, ev(i as i64, *p as f64));
+            offer(&mut b, 0, 7, *p, ev(i as i64, *p as f64));
         }
-        let closed = a.close(0, 0);
+        let closed = close(&mut a, 0, 0);
         dropped += closed.dropped_by_event_cap;
         let mut ka: Vec<f64> = closed.kept.iter().map(|e| e.numbers[0]).collect();
-        let mut kb: Vec<f64> = b.close(0, 0).kept.iter().map(|e| e.numbers[0]).collect();
+        let mut kb: Vec<f64> = close(&mut b, 0, 0)
+            .kept
+            .iter()
+            .map(|e| e.numbers[0])
+            .collect();
         ka.sort_by(f64::total_cmp);
         kb.sort_by(f64::total_cmp);
         assert_eq!(ka, vec![10.0, 20.0, 30.0]);
         assert_eq!(ka, kb);
         assert_eq!(dropped, 3);
+    }
+
+    #[test]
+    fn priorities_are_computed_only_for_units_over_the_bound() {
+        // k = 2: 100 units with 2 events each need no priority; one unit with 5 needs 5.
+        let calls = std::cell::Cell::new(0u32);
+        let counted = |p: &P| {
+            calls.set(calls.get() + 1);
+            p.0
+        };
+        let mut b = Bounder::new(2, 10);
+        for unit in 0..100u64 {
+            for i in 0..2 {
+                b.offer(0, unit, (i, ev(0, 1.0)), counted);
+            }
+        }
+        for i in 0..5 {
+            b.offer(0, 1_000, (i, ev(0, 1.0)), counted);
+        }
+        let closed = b.close(0, 0, counted);
+        assert_eq!(closed.kept.len(), 200 + 2);
+        assert_eq!(closed.dropped_by_event_cap, 3);
+        assert_eq!(calls.get(), 5);
     }
 
     #[test]
@@ -356,13 +447,19 @@ mod tests {
         let mut b = Bounder::new(2, 10);
         let mut dropped = 0;
         for i in 0..100_000u64 {
-            dropped += b.offer(0, 7, i.wrapping_mul(0x9e37_79b9_7f4a_7c15), ev(0, 1.0));
+            dropped += offer(
+                &mut b,
+                0,
+                7,
+                i.wrapping_mul(0x9e37_79b9_7f4a_7c15),
+                ev(0, 1.0),
+            );
             if i % 100 == 0 {
-                b.offer(0, 1_000 + i, i, ev(0, 2.0));
+                offer(&mut b, 0, 1_000 + i, i, ev(0, 2.0));
             }
             assert!(b.retained_events() <= MIN_COMPACT_AT.max(2 * (2 + 1_000)));
         }
-        let closed = b.close(0, 0);
+        let closed = close(&mut b, 0, 0);
         assert_eq!(closed.kept.len(), 2 + 1_000);
         assert_eq!(dropped + closed.dropped_by_event_cap, 100_000 - 2);
     }
@@ -371,15 +468,15 @@ mod tests {
     fn window_cap_applies_per_epoch_and_resets() {
         let mut b = Bounder::new(5, 2);
         for w in 0..4 {
-            b.offer(w, 9, 1, ev(w, 1.0));
+            offer(&mut b, w, 9, 1, ev(w, 1.0));
         }
-        assert_eq!(b.close(0, 0).kept.len(), 1);
-        assert_eq!(b.close(1, 0).kept.len(), 1);
-        let third = b.close(2, 0);
+        assert_eq!(close(&mut b, 0, 0).kept.len(), 1);
+        assert_eq!(close(&mut b, 1, 0).kept.len(), 1);
+        let third = close(&mut b, 2, 0);
         assert_eq!(third.kept.len(), 0);
         assert_eq!(third.dropped_by_window_cap, 1);
         // New epoch: the unit may contribute again.
-        assert_eq!(b.close(3, 1).kept.len(), 1);
+        assert_eq!(close(&mut b, 3, 1).kept.len(), 1);
     }
 
     #[test]
@@ -388,18 +485,18 @@ mod tests {
         let run = |with_other: bool| {
             let mut b = Bounder::new(2, 1);
             for i in 0..10u64 {
-                b.offer(
+                offer(
+                    &mut b,
                     0,
                     1,
                     i.wrapping_mul(0x9e37_79b9_7f4a_7c15),
                     ev(i as i64, i as f64),
                 );
                 if with_other {
-                    b.offer(0, 2, i, ev(i as i64, 100.0));
+                    offer(&mut b, 0, 2, i, ev(i as i64, 100.0));
                 }
             }
-            let mut kept: Vec<f64> = b
-                .close(0, 0)
+            let mut kept: Vec<f64> = close(&mut b, 0, 0)
                 .kept
                 .iter()
                 .filter(|e| e.numbers[0] < 100.0)
@@ -427,12 +524,12 @@ mod tests {
             let mut dropped_now = 0;
             for (i, (w, unit, prio)) in offers.iter().enumerate() {
                 // The value identifies the offer, so survivors can be compared as sets.
-                dropped_now += b.offer(*w, *unit, *prio, ev(*w, i as f64));
+                dropped_now += offer(&mut b, *w, *unit, *prio, ev(*w, i as f64));
             }
             // Windows 0..3 are epoch 0, windows 3..6 epoch 1.
             let (mut got, mut dropped_cap) = (Vec::new(), 0);
             for w in 0..6 {
-                let closed = b.close(w, (w / 3) as u64);
+                let closed = close(&mut b, w, (w / 3) as u64);
                 got.extend(closed.kept.iter().map(|e| e.numbers[0] as usize));
                 dropped_now += closed.dropped_by_event_cap;
                 dropped_cap += closed.dropped_by_window_cap;

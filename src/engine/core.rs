@@ -182,7 +182,7 @@ pub struct Engine {
     next_close: i64,
     max_event_time: Option<Millis>,
     open: BTreeMap<i64, WindowAgg>,
-    bounder: Option<Bounder<Contribution>>,
+    bounder: Option<Bounder<Retained>>,
     /// Turns events into their exact per-statistic contributions; shared with
     /// [`LineDecoder`]s so parse workers can do that work too.
     contributor: Arc<Contributor>,
@@ -301,7 +301,7 @@ impl Engine {
     }
 
     /// Bounding state, for memory reporting (unit level only).
-    pub fn bounder(&self) -> Option<&Bounder<Contribution>> {
+    pub fn bounder(&self) -> Option<&Bounder<Retained>> {
         self.bounder.as_ref()
     }
 
@@ -378,9 +378,7 @@ impl Engine {
         let Some(w) = self.accept(ev.time) else {
             return;
         };
-        let keyed = ev
-            .unit
-            .map(|unit| (unit, event_priority(&self.hashers, unit, &ev)));
+        let keyed = ev.unit.map(|unit| (unit, priority_input(unit, &ev)));
         let contribution = self.contributor.contribution(&ev);
         self.place(w, keyed, contribution);
     }
@@ -424,13 +422,19 @@ impl Engine {
     }
 
     /// Puts an accepted event's contribution into window `w`: through the bounder when
-    /// the engine bounds units (`keyed`: the unit hash and the event's bounding priority),
-    /// straight into the window's aggregate otherwise. Then closes what the watermark
-    /// passed.
-    fn place(&mut self, w: i64, keyed: Option<(u64, u64)>, contribution: Contribution) {
+    /// the engine bounds units (`keyed`: the unit hash and what the event's bounding
+    /// priority is a hash of), straight into the window's aggregate otherwise. Then closes
+    /// what the watermark passed.
+    fn place(&mut self, w: i64, keyed: Option<(u64, PriorityInput)>, contribution: Contribution) {
         match (&mut self.bounder, keyed) {
-            (Some(b), Some((unit, priority))) => {
-                self.counters.dropped_event_bound += b.offer(w, unit, priority, contribution);
+            (Some(b), Some((unit, priority_input))) => {
+                let retained = Retained {
+                    contribution,
+                    priority_input,
+                };
+                let hashers = &self.hashers;
+                self.counters.dropped_event_bound +=
+                    b.offer(w, unit, retained, |r| r.priority(hashers));
             }
             _ => {
                 let plan = &self.plan;
@@ -508,8 +512,13 @@ impl Engine {
             .remove(&w)
             .unwrap_or_else(|| WindowAgg::empty(&self.plan));
         if let Some(b) = &mut self.bounder {
-            let contributor = &self.contributor;
-            let dropped = b.close_with(w, epoch, |c| contributor.add(c, &mut agg.values));
+            let (contributor, hashers) = (&self.contributor, &self.hashers);
+            let dropped = b.close_with(
+                w,
+                epoch,
+                |r| r.priority(hashers),
+                |r| contributor.add(&r.contribution, &mut agg.values),
+            );
             self.counters.dropped_event_bound += dropped.by_event_cap;
             self.counters.dropped_window_bound += dropped.by_window_cap;
         }
@@ -728,8 +737,9 @@ pub struct Prepared {
 #[derive(Clone, Debug, PartialEq)]
 struct PreparedEvent {
     time: Millis,
-    /// The unit hash and the event's bounding priority (events with a unit).
-    keyed: Option<(u64, u64)>,
+    /// The unit hash and what the event's bounding priority is a hash of (events with a
+    /// unit).
+    keyed: Option<(u64, PriorityInput)>,
     contribution: Contribution,
 }
 
@@ -753,9 +763,7 @@ impl LineDecoder {
     pub fn prepare(&self, line: &[u8]) -> Prepared {
         let outcome = self.decode(line).map(|ev| PreparedEvent {
             time: ev.time,
-            keyed: ev
-                .unit
-                .map(|unit| (unit, event_priority(&self.hashers, unit, &ev))),
+            keyed: ev.unit.map(|unit| (unit, priority_input(unit, &ev))),
             contribution: self.contributor.contribution(&ev),
         });
         Prepared { outcome }
@@ -795,21 +803,41 @@ fn decode_line(
     parser.parse(line, &|raw: &[u8]| hashers.unit.hash(raw))
 }
 
-/// Priority of an event for bottom-k bounding: a keyed hash of the unit and the event's
-/// content (unit, time, categories, numbers as little-endian bytes, in that order),
-/// independent of arrival order and of other units (see `bound`). Fed to BLAKE3 piece by
-/// piece, which hashes exactly the concatenation.
-fn event_priority(hashers: &EventHashers, unit: u64, ev: &Event) -> u64 {
-    hashers.priority.hash_with(|feed| {
-        feed(&unit.to_le_bytes());
-        feed(&ev.time.0.to_le_bytes());
-        for c in &ev.categories {
-            feed(&c.to_le_bytes());
-        }
-        for x in &ev.numbers {
-            feed(&x.to_bits().to_le_bytes());
-        }
-    })
+/// What the bounder keeps of an event: its contribution, and the bytes its bounding
+/// priority is a hash of. The hash is taken only when the event's unit has more than `k`
+/// events in the window (see `bound`), which is rare: most units have at most `k`.
+#[derive(Clone, Debug)]
+pub struct Retained {
+    contribution: Contribution,
+    priority_input: PriorityInput,
+}
+
+impl Retained {
+    /// The event's priority for bottom-k bounding: [`priority_input`] hashed with the
+    /// priority key.
+    fn priority(&self, hashers: &EventHashers) -> u64 {
+        hashers.priority.hash(&self.priority_input)
+    }
+}
+
+/// The bytes of an event's bounding priority (see [`priority_input`]); 64 inline bytes
+/// hold a unit, a time, four categories and four numbers.
+type PriorityInput = smallvec::SmallVec<[u8; 64]>;
+
+/// What an event's priority for bottom-k bounding is a keyed hash of: the unit and the
+/// event's content (unit, time, categories, numbers as little-endian bytes, in that order),
+/// independent of arrival order and of other units (see `bound`).
+fn priority_input(unit: u64, ev: &Event) -> PriorityInput {
+    let mut bytes = PriorityInput::new();
+    bytes.extend_from_slice(&unit.to_le_bytes());
+    bytes.extend_from_slice(&ev.time.0.to_le_bytes());
+    for c in &ev.categories {
+        bytes.extend_from_slice(&c.to_le_bytes());
+    }
+    for x in &ev.numbers {
+        bytes.extend_from_slice(&x.to_bits().to_le_bytes());
+    }
+    bytes
 }
 
 impl WindowAgg {
