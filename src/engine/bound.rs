@@ -45,9 +45,10 @@ const MIN_COMPACT_AT: usize = 4096;
 /// issue 9); the bottom-k choice is made by sorting the keys, at close and whenever the
 /// buffer reaches `compact_at`. A compaction keeps each unit's `k` smallest priorities,
 /// frees the rest and sets `compact_at` to twice what it kept (at least
-/// [`MIN_COMPACT_AT`]), so the buffer never holds more than about twice `k` events per
-/// unit plus a constant, whatever the event rate, and the sorting costs O(log n) per event
-/// amortised. Priorities are computed only for units with more than `k` events buffered:
+/// [`MIN_COMPACT_AT`]); a recycled buffer starts at twice the survivors of the window that
+/// used it last. So the buffer never holds more than about twice `k` events per unit (of
+/// this window or the previous one) plus a constant, whatever the event rate, and the
+/// sorting costs O(log n) per event amortised. Priorities are computed only for units with more than `k` events buffered:
 /// the others keep every event whatever their priorities.
 #[derive(Debug)]
 struct WindowBuffer<T> {
@@ -68,10 +69,10 @@ impl<T> WindowBuffer<T> {
         }
     }
 
-    fn clear(&mut self, compact_floor: usize) {
+    fn clear(&mut self, compact_at: usize) {
         self.keys.clear();
         self.events.clear();
-        self.compact_at = compact_floor;
+        self.compact_at = compact_at;
     }
 
     /// Calls `each(unit, seq, rank)` for every buffered event, unit by unit, with `rank`
@@ -332,7 +333,11 @@ impl<T> Bounder<T> {
                 keep(event);
             }
         }
-        window.clear(self.compact_floor);
+        // The next window starts compacting at twice this one's survivors of the per-window
+        // bound: steady traffic then needs no compaction before its close, and the buffer
+        // stays within twice `k` per unit of a recent window (plus the floor).
+        let survivors = window.events.len() - dropped.by_event_cap as usize;
+        window.clear((2 * survivors).max(self.compact_floor));
         self.spare = Some(window);
         dropped
     }
