@@ -48,8 +48,8 @@ const MIN_COMPACT_AT: usize = 4096;
 /// [`MIN_COMPACT_AT`]); a recycled buffer starts at twice the survivors of the window that
 /// used it last. So the buffer never holds more than about twice `k` events per unit (of
 /// this window or the previous one) plus a constant, whatever the event rate, and the
-/// sorting costs O(log n) per event amortised. Priorities are computed only for units with more than `k` events buffered:
-/// the others keep every event whatever their priorities.
+/// sorting costs O(log n) per event amortised. Priorities are computed only for units with
+/// more than `k` events buffered: the others keep every event whatever their priorities.
 #[derive(Debug)]
 struct WindowBuffer<T> {
     keys: Vec<Key>,

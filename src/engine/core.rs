@@ -26,7 +26,9 @@ use crate::engine::dd::Dd;
 use crate::engine::event::{Event, LineParser, RejectReason, Rejection, Schema};
 use crate::engine::ledger::{BudgetError, EpochCharge, Ledger};
 use crate::engine::linear;
-use crate::engine::mechanism::{self, ContinualMechanism, Estimate, NodeAddr, NodeNoise};
+use crate::engine::mechanism::{
+    self, ContinualMechanism, Estimate, LeafRange, NodeAddr, NodeNoise,
+};
 use crate::engine::noise::{self, KeyedHash64, NoiseId, NoiseKey};
 use crate::engine::plan::{ComponentRole, Plan, PlanError, PrivacyLevel, Scope, StatPlan};
 use crate::engine::release::{self, Guarantee, Release, SharedStr, Statistics};
@@ -621,7 +623,8 @@ impl Engine {
             }
         }
         // 2. Estimates for every scope, as records. Room for all of them at once: with many
-        // groups the outbox would otherwise grow (and copy itself) by doubling.
+        // groups the outbox would otherwise grow (and copy itself) by doubling (closing an
+        // epoch's first window of 100,000 groups: 158 -> 118 ms, issue 9).
         self.outbox.reserve(
             self.plan
                 .stats
@@ -637,7 +640,7 @@ impl Engine {
             // copies): strings per record were most of closing 100,000 groups (issue 9).
             let stat = SharedStr::from(s.name.as_str());
             let kind = SharedStr::from(s.kind);
-            let scopes: Vec<(SharedStr, SharedStr, SharedStr)> = s
+            let scopes: Vec<(LeafRange, SharedStr, SharedStr, SharedStr)> = s
                 .scopes
                 .iter()
                 .map(|scope| {
@@ -645,6 +648,7 @@ impl Engine {
                     let start = Millis((epoch_start + i64::from(range.first)) * self.window_ms);
                     let end = Millis((epoch_start + i64::from(range.last) + 1) * self.window_ms);
                     (
+                        range,
                         scope.label().into(),
                         start.to_rfc3339().into(),
                         end.to_rfc3339().into(),
@@ -660,8 +664,8 @@ impl Engine {
                         .map(|(f, k)| (f.to_string(), k.to_string()))
                         .collect(),
                 );
-                for (scope, (label, start, end)) in s.scopes.iter().zip(&scopes) {
-                    let range = scope.range(leaf);
+                for (scope, (range, label, start, end)) in s.scopes.iter().zip(&scopes) {
+                    let range = *range;
                     let series = &state.series[si];
                     let est: SmallVec<[Estimate; 2]> = series
                         .mechs

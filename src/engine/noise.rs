@@ -171,17 +171,6 @@ impl KeyedHash64 {
         first8.copy_from_slice(&digest.as_bytes()[..8]);
         u64::from_le_bytes(first8)
     }
-
-    /// `hash64(domain, bytes)` where `write` feeds the bytes in pieces (`feed(piece)`), so
-    /// callers need not build the concatenation themselves. The pieces are gathered on the
-    /// stack (up to 128 bytes; longer inputs spill to the heap) and hashed in one call,
-    /// which for short inputs is much cheaper than BLAKE3's incremental `update` per piece;
-    /// the hash of the concatenation is the same either way.
-    pub fn hash_with(&self, write: impl FnOnce(&mut dyn FnMut(&[u8]))) -> u64 {
-        let mut bytes = smallvec::SmallVec::<[u8; 128]>::new();
-        write(&mut |piece: &[u8]| bytes.extend_from_slice(piece));
-        self.hash(&bytes)
-    }
 }
 
 // ---------------------------------------------------------------------------------------------
@@ -1403,15 +1392,9 @@ mod tests {
     #[test]
     fn hash64_is_keyed_and_domain_separated() {
         let key = NoiseKey::from_seed(1);
-        // The cached hasher gives the same values, however the input is split.
+        // The cached hasher gives the same values.
         let cached = key.hasher64("unit");
         assert_eq!(cached.hash(b"alice"), key.hash64("unit", b"alice"));
-        let split = cached.hash_with(|feed| {
-            feed(b"al");
-            feed(b"");
-            feed(b"ice");
-        });
-        assert_eq!(split, key.hash64("unit", b"alice"));
         assert_eq!(format!("{cached:?}"), "KeyedHash64(<redacted>)");
         let h = key.hash64("unit", b"alice");
         assert_eq!(h, key.hash64("unit", b"alice"));
