@@ -368,6 +368,33 @@ fn product_units(a: f64, b: f64, scale: f64) -> i128 {
     f64_to_i128(int_part).saturating_add(f64_to_i128(frac_units))
 }
 
+/// Smallest and largest nonzero magnitudes for which [`two_product_err`] is exact: 2^-450
+/// and 2^450. Splitting multiplies by 2^27 + 1, far from overflow below 2^450, and every
+/// partial product of two such factors is at least 2^-900 · 2^-53 in magnitude or zero,
+/// above the smallest normal 2^-1022, so nothing underflows.
+const SPLIT_MIN: f64 = f64::from_bits((1023 - 450) << 52);
+const SPLIT_MAX: f64 = f64::from_bits((1023 + 450) << 52);
+
+/// a·b − p exactly, for p = fl(a·b): Dekker's TwoProduct with Veltkamp's splitting (Dekker
+/// 1971, "A floating-point technique for extending the available precision", Numer. Math.
+/// 18; Ogita, Rump & Oishi 2005, Algorithm 3.3). Each factor splits into a high part of 26
+/// significant bits and a low part, so the four partial products are exact, and the sum is
+/// exact in the order below. It needs no overflow in the split and no underflow in the
+/// partial products, which [`SPLIT_MIN`] and [`SPLIT_MAX`] guarantee (or a zero factor).
+/// Equal to `a.mul_add(b, -p)`, the fused form, up to the sign of a zero.
+#[inline(always)]
+fn two_product_err(a: f64, b: f64, p: f64) -> f64 {
+    const SPLITTER: f64 = 134_217_729.0; // 2^27 + 1
+    let split = |v: f64| {
+        let c = SPLITTER * v;
+        let hi = c - (c - v);
+        (hi, v - hi)
+    };
+    let (a_hi, a_lo) = split(a);
+    let (b_hi, b_lo) = split(b);
+    a_lo * b_lo - (((p - a_hi * b_hi) - a_lo * b_hi) - a_hi * b_lo)
+}
+
 /// 2^52: from here on every f64 is an integer (the significand has 52 fraction bits).
 const TWO_POW_52: f64 = 4_503_599_627_370_496.0;
 
@@ -460,10 +487,12 @@ pub fn accumulate(layout: &Layout, x: &[f64], y: f64, grid_exp: i32, acc: &mut [
     }
     z[offset..offset + x.len()].copy_from_slice(x);
     z[offset + x.len()] = y;
+    // Dekker's product error is exact for every pair when no |z_i| is tiny or huge.
+    let split_exact = z.iter().all(|v| *v == 0.0 || (SPLIT_MIN..=SPLIT_MAX).contains(&v.abs()));
     let mut idx = 0;
     for (i, &zi) in z.iter().enumerate() {
         for &zj in &z[i..] {
-            let units = match product_units_small(zi, zj, scale) {
+            let units = match product_units_small(zi, zj, scale, split_exact) {
                 Some(units) => i128::from(units),
                 None => product_units(zi, zj, scale),
             };
@@ -482,14 +511,23 @@ pub fn accumulate(layout: &Layout, x: &[f64], y: f64, grid_exp: i32, acc: &mut [
 /// (as `trunc_int` does), |err·scale| ≤ ulp(P)/2 ≤ ½ so |frac| < 3/2, and in the tie case
 /// frac ± ½ is an integer, so its cast is exact too. The sum of the two parts stays far
 /// inside i64.
+///
+/// With `split_exact` (both factors 0 or of magnitude in [`SPLIT_MIN`, `SPLIT_MAX`]) the
+/// product's rounding error comes from [`two_product_err`] instead of a fused multiply-add:
+/// the same exact value, without the out-of-line `fma` call that x86-64's baseline target
+/// needs, so successive products overlap in the pipeline.
 #[inline(always)]
-fn product_units_small(a: f64, b: f64, scale: f64) -> Option<i64> {
+fn product_units_small(a: f64, b: f64, scale: f64, split_exact: bool) -> Option<i64> {
     let p = a * b;
     let big = p * scale;
     if big.is_nan() || big.abs() >= TWO_POW_52 {
         return None;
     }
-    let err = a.mul_add(b, -p);
+    let err = if split_exact {
+        two_product_err(a, b, p)
+    } else {
+        a.mul_add(b, -p)
+    };
     let int_units = big as i64;
     let frac = (big - int_units as f64) + err * scale;
     let frac_trunc = frac as i64;
@@ -501,12 +539,10 @@ fn product_units_small(a: f64, b: f64, scale: f64) -> Option<i64> {
             frac.signum()
         };
         (frac + 0.5 * sign) as i64
-    } else if rest >= 0.5 {
-        frac_trunc + 1
-    } else if rest <= -0.5 {
-        frac_trunc - 1
     } else {
-        frac_trunc
+        // Branch-free: the direction is data-dependent and would be mispredicted half the
+        // time.
+        frac_trunc + i64::from(rest >= 0.5) - i64::from(rest <= -0.5)
     };
     Some(int_units + frac_units)
 }
@@ -2089,7 +2125,18 @@ mod tests {
         ) {
             let scale = pow2(-grid_exp);
             let general = product_units(a, b, scale);
-            match product_units_small(a, b, scale) {
+            let split_exact = [a, b]
+                .iter()
+                .all(|v| *v == 0.0 || (SPLIT_MIN..=SPLIT_MAX).contains(&v.abs()));
+            if split_exact {
+                let p = a * b;
+                prop_assert_eq!(two_product_err(a, b, p), a.mul_add(b, -p));
+                prop_assert_eq!(
+                    product_units_small(a, b, scale, true),
+                    product_units_small(a, b, scale, false)
+                );
+            }
+            match product_units_small(a, b, scale, false) {
                 Some(small) => prop_assert_eq!(i128::from(small), general),
                 None => {
                     let big = a * b * scale;
