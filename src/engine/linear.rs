@@ -296,6 +296,27 @@ fn l2_norm(x: &[f64]) -> f64 {
             .sqrt()
 }
 
+/// True only when `l2_norm(x) <= b` for sure, from the plain sum of squares: no division and
+/// no square root, so [`clip`] skips the careful norm for the common vector inside the
+/// bound, with the same outcome (the norm is only compared with the bound).
+///
+/// Derivation. For finite x the computed S = fl(Σ x_i²) satisfies Σ x_i² ≤ S(1 + γ) + d·2^-1022
+/// with γ = (d+1)·2^-53 < 2^-42 for d ≤ [`MAX_FEATURES`] (Higham 2002, "Accuracy and
+/// Stability of Numerical Algorithms", §3.1, recursive summation of rounded squares; the
+/// second term covers squares that underflow). The test S ≤ fl(b²)·(1 − 2^-30) with
+/// 2^-400 ≤ b ≤ 2^400 (so b² is finite and normal) then gives ‖x‖ < b(1 − 2^-32), and [`l2_norm`] is within a relative
+/// (d+4)·2^-53 < 2^-42 of ‖x‖ (see [`ROUNDING_MARGIN`]), so it returns at most b.
+fn surely_within_norm(x: &[f64], b: f64) -> bool {
+    const MARGIN: f64 = 1.0 - 1.0 / (1u64 << 30) as f64;
+    const B_MIN: f64 = f64::from_bits((1023 - 400) << 52);
+    const B_MAX: f64 = f64::from_bits((1023 + 400) << 52);
+    if x.len() > MAX_FEATURES || !(B_MIN..=B_MAX).contains(&b) {
+        return false;
+    }
+    let sum_sq: f64 = x.iter().map(|v| v * v).sum();
+    sum_sq <= b * b * MARGIN
+}
+
 /// Clip one event before aggregation (privacy-math §6, "Clipping"): x is scaled to L2 norm
 /// ≤ `feature_norm_bound` (x · min(1, B/‖x‖)), and y is clamped to [−B_y, B_y].
 ///
@@ -320,11 +341,13 @@ pub fn clip(x: &mut [f64], y: &mut f64, feature_norm_bound: f64, target_bound: f
             *v = 0.0;
         }
     }
-    let norm = l2_norm(x);
-    if norm > b_x {
-        let factor = b_x / norm;
-        for v in x.iter_mut() {
-            *v *= factor;
+    if !surely_within_norm(x, b_x) {
+        let norm = l2_norm(x);
+        if norm > b_x {
+            let factor = b_x / norm;
+            for v in x.iter_mut() {
+                *v *= factor;
+            }
         }
     }
     *y = if y.is_finite() {
@@ -2142,6 +2165,27 @@ mod tests {
                     let big = a * b * scale;
                     prop_assert!(big.is_nan() || big.abs() >= TWO_POW_52);
                 }
+            }
+        }
+
+        /// The shortcut in `clip` only ever answers "inside" when the careful norm agrees,
+        /// including vectors right at the bound.
+        #[test]
+        fn norm_shortcut_never_contradicts_the_careful_norm(
+            raw in prop::collection::vec(prop_oneof![any::<f64>(), -40.0..40.0f64, -1e-300..1e-300f64], 1..6),
+            b in prop_oneof![1e-3f64..1e3, any::<f64>()],
+            at_bound in any::<bool>(),
+        ) {
+            let x: Vec<f64> = raw.iter().map(|v| if v.is_finite() { *v } else { 0.0 }).collect();
+            let b = if at_bound && l2_norm(&x) > 0.0 {
+                // A bound equal to the vector's own norm: the shortcut must not claim room.
+                l2_norm(&x)
+            } else {
+                b
+            };
+            if surely_within_norm(&x, b) {
+                prop_assert!(l2_norm(&x) <= b, "‖x‖ = {} > {}", l2_norm(&x), b);
+                prop_assert!(!at_bound || l2_norm(&x) < b);
             }
         }
 
