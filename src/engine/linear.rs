@@ -511,7 +511,9 @@ pub fn accumulate(layout: &Layout, x: &[f64], y: f64, grid_exp: i32, acc: &mut [
     z[offset..offset + x.len()].copy_from_slice(x);
     z[offset + x.len()] = y;
     // Dekker's product error is exact for every pair when no |z_i| is tiny or huge.
-    let split_exact = z.iter().all(|v| *v == 0.0 || (SPLIT_MIN..=SPLIT_MAX).contains(&v.abs()));
+    let split_exact = z
+        .iter()
+        .all(|v| *v == 0.0 || (SPLIT_MIN..=SPLIT_MAX).contains(&v.abs()));
     let mut idx = 0;
     for (i, &zi) in z.iter().enumerate() {
         for &zj in &z[i..] {
