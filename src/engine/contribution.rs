@@ -215,7 +215,22 @@ mod tests {
     /// normalised vector; the group is the mixed-radix index of the event's keys.
     #[test]
     fn contributions_follow_their_definitions() {
-        let config = Config::from_toml_str(crate::app::DEMO_CONFIG).expect("demo config");
+        check_definitions(crate::app::DEMO_CONFIG, false);
+    }
+
+    /// The same with a budget so large that the grids are fine enough to put values beyond
+    /// i64: the contribution is then held in i128, with the same values.
+    #[test]
+    fn contributions_beyond_i64_follow_their_definitions() {
+        let fine = crate::app::DEMO_CONFIG
+            .replace("rho_per_epoch = 1.0 ", "rho_per_epoch = 1e30 ")
+            .replace("lifetime_rho = 4.0 ", "lifetime_rho = 4e30 ");
+        assert_ne!(fine, crate::app::DEMO_CONFIG, "the demo config's budget lines moved");
+        check_definitions(&fine, true);
+    }
+
+    fn check_definitions(config_text: &str, wide: bool) {
+        let config = Config::from_toml_str(config_text).expect("demo config");
         let plan = Plan::new(&config).expect("demo plan");
         let contributor = Contributor::new(&plan);
         let index = |names: &[String], name: &str| names.iter().position(|n| n == name).unwrap();
@@ -241,7 +256,11 @@ mod tests {
             numbers: numbers.clone(),
         };
         let c = contributor.contribution(&ev);
-        assert!(c.wide.is_none(), "demo grids fit i64");
+        assert_eq!(c.wide.is_some(), wide, "which representation");
+        let values: Vec<i128> = match &c.wide {
+            Some(wide) => wide.to_vec(),
+            None => c.narrow.iter().map(|&v| i128::from(v)).collect(),
+        };
         let mut offset = 0;
         for (s, &group) in plan.stats.iter().zip(&c.groups) {
             let want_group = match s.name.as_str() {
@@ -251,7 +270,7 @@ mod tests {
             };
             assert_eq!(group, want_group, "{}", s.name);
             for comp in &s.components {
-                let got = &c.narrow[offset..offset + comp.dim];
+                let got = &values[offset..offset + comp.dim];
                 let q = 2f64.powi(comp.grid_exp);
                 let want: Vec<i128> = match &comp.role {
                     ComponentRole::Count => vec![1i128 << -comp.grid_exp],
@@ -277,12 +296,11 @@ mod tests {
                         acc
                     }
                 };
-                let got: Vec<i128> = got.iter().map(|&v| i128::from(v)).collect();
-                assert_eq!(got, want, "{}", s.name);
+                assert_eq!(got, want.as_slice(), "{}", s.name);
                 offset += comp.dim;
             }
         }
-        assert_eq!(offset, c.narrow.len());
+        assert_eq!(offset, values.len());
 
         // Adding to an aggregate puts exactly these values at the group's slot.
         let mut agg: Vec<Vec<Vec<i128>>> = plan
