@@ -701,8 +701,9 @@ pub fn state_show(dir: &Path, json: bool, w: &mut dyn Write) -> Result<(), AppEr
         writeln!(w, "state      {}", s.dir.display())?;
         writeln!(
             w,
-            "format     {}{}; key fingerprint {}",
+            "format     {} (event hash {}){}; key fingerprint {}",
             s.format,
+            s.event_hash,
             if s.seeded {
                 ", SEEDED (not private)"
             } else {

@@ -182,7 +182,8 @@ fn new_epoch_changes_the_config_and_continues_seq_epochs_and_budget() {
 
     let s = show(d, "s");
     assert_eq!(s["generation"], 1);
-    assert_eq!(s["format"], 2);
+    assert_eq!(s["format"], 3);
+    assert_eq!(s["event_hash"], "siphash24-v1");
     assert_eq!(
         s["log_records"], 0,
         "the new generation starts with an empty log"

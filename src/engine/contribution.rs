@@ -225,7 +225,11 @@ mod tests {
         let fine = crate::app::DEMO_CONFIG
             .replace("rho_per_epoch = 1.0 ", "rho_per_epoch = 1e30 ")
             .replace("lifetime_rho = 4.0 ", "lifetime_rho = 4e30 ");
-        assert_ne!(fine, crate::app::DEMO_CONFIG, "the demo config's budget lines moved");
+        assert_ne!(
+            fine,
+            crate::app::DEMO_CONFIG,
+            "the demo config's budget lines moved"
+        );
         check_definitions(&fine, true);
     }
 

@@ -780,7 +780,8 @@ impl LineDecoder {
 }
 
 /// The noise key's keyed hashes that every event needs, subkeys derived once
-/// ([`NoiseKey::hasher64`]; the values are those of `hash64` in the same domains).
+/// ([`NoiseKey::event_hasher`]: the key's [`EventHash`](crate::engine::noise::EventHash),
+/// which its state records).
 #[derive(Clone, Debug)]
 struct EventHashers {
     /// Domain "unit": unit ids.
@@ -792,8 +793,8 @@ struct EventHashers {
 impl EventHashers {
     fn new(key: &NoiseKey) -> EventHashers {
         EventHashers {
-            unit: key.hasher64("unit"),
-            priority: key.hasher64("priority"),
+            unit: key.event_hasher("unit"),
+            priority: key.event_hasher("priority"),
         }
     }
 }

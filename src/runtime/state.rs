@@ -48,16 +48,24 @@ use crate::config::Config;
 use crate::engine::Engine;
 use crate::engine::core::Carry;
 use crate::engine::event::RejectReason;
-use crate::engine::noise::NoiseKey;
+use crate::engine::noise::{EventHash, NoiseKey};
 use crate::engine::time::Millis;
 
-/// State format version this build reads and writes once a state has generations.
-/// Format 1 (no `ledger.jsonl`) is still written at creation, so a state that never had a
-/// fresh epoch stays readable by builds that only know format 1; `new-epoch` raises
-/// `meta.json` to 2 before it writes a ledger, so such builds refuse instead of ignoring it.
-pub const FORMAT_VERSION: u32 = 2;
-/// Format of a state without generations.
-const FORMAT_PLAIN: u32 = 1;
+/// Newest state format this build reads, and the one it creates.
+///
+/// - 1: no `ledger.jsonl`; events hashed with keyed BLAKE3 (`EventHash::Blake3`).
+/// - 2: as 1, with generations (`ledger.jsonl`). `new-epoch` raises a format-1 state to 2
+///   before it writes a ledger, so builds that only know format 1 refuse it instead of
+///   ignoring the ledger.
+/// - 3: `meta.json` records the event hash (`event_hash`), SipHash-2-4 for every state
+///   created since. Builds that know only 1 and 2 would hash its events with BLAKE3, so
+///   they must refuse it, and do: they refuse any format above theirs.
+///
+/// Formats 1 and 2 stay readable and keep BLAKE3 for their whole life (see
+/// [`EventHash`]): a state's event hash never changes.
+pub const FORMAT_VERSION: u32 = 3;
+/// Lowest format that may have generations.
+const FORMAT_GENERATIONS: u32 = 2;
 
 const KIND_LINE: u8 = 1;
 const KIND_TICK: u8 = 2;
@@ -249,6 +257,31 @@ struct Meta {
     config_fingerprint: String,
     key_fingerprint: String,
     seeded: bool,
+    /// [`EventHash::name`]; absent before format 3 (BLAKE3).
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    event_hash: Option<String>,
+}
+
+impl Meta {
+    /// The state's event hash: recorded from format 3 on, BLAKE3 before.
+    fn event_hash(&self, path: &Path) -> Result<EventHash, StateError> {
+        match (&self.event_hash, self.format >= 3) {
+            (None, false) => Ok(EventHash::Blake3),
+            (Some(name), true) => EventHash::from_name(name).ok_or_else(|| {
+                corrupt(
+                    path,
+                    format!(
+                        "unknown event_hash {name:?} (this build knows blake3-v1 and siphash24-v1)"
+                    ),
+                )
+            }),
+            (None, true) => Err(corrupt(path, "format 3 or later without event_hash")),
+            (Some(_), false) => Err(corrupt(
+                path,
+                format!("event_hash recorded in a format {} state", self.format),
+            )),
+        }
+    }
 }
 
 /// One generation after the first, as recorded in `ledger.jsonl`: what the deployment had
@@ -458,6 +491,7 @@ fn read_meta(dir: &Path) -> Result<Option<Meta>, StateError> {
             supported: FORMAT_VERSION,
         });
     }
+    meta.event_hash(&path)?;
     Ok(Some(meta))
 }
 
@@ -511,7 +545,12 @@ fn load_key(dir: &Path, seed: Option<u64>, meta: Option<&Meta>) -> Result<NoiseK
             },
         });
     }
-    Ok(key)
+    // The event hash travels with the key, so every engine built from a state hashes
+    // events as the state always has.
+    match meta {
+        Some(meta) => Ok(key.with_event_hash(meta.event_hash(&meta_path)?)),
+        None => Ok(key),
+    }
 }
 
 /// Reads `ledger.jsonl`. Every line must be complete and pass its checksum, and the
@@ -792,17 +831,18 @@ impl StateDir {
                 let text = render_config(config)?;
                 write_atomic(&path, text.as_bytes()).map_err(io_err(&path))?;
                 let meta = Meta {
-                    format: FORMAT_PLAIN,
+                    format: FORMAT_VERSION,
                     config_fingerprint: fingerprint.clone(),
                     key_fingerprint: key_fingerprint(&key),
                     seeded: seed.is_some(),
+                    event_hash: Some(key.event_hash().name().to_string()),
                 };
                 write_meta(dir, &meta)?;
                 meta
             }
         };
         let generations = read_ledger(dir)?;
-        if !generations.is_empty() && meta.format < FORMAT_VERSION {
+        if !generations.is_empty() && meta.format < FORMAT_GENERATIONS {
             return Err(corrupt(
                 &dir.join(META),
                 format!(
@@ -1344,9 +1384,9 @@ impl Current {
         next.generation = g;
         next.config_fingerprint = config.fingerprint();
         next.check = next.checksum();
-        if self.meta.format < FORMAT_VERSION {
+        if self.meta.format < FORMAT_GENERATIONS {
             let meta = Meta {
-                format: FORMAT_VERSION,
+                format: FORMAT_GENERATIONS,
                 ..self.meta.clone()
             };
             write_meta(dir, &meta)?;
@@ -1385,6 +1425,8 @@ pub struct Summary {
     pub seeded: bool,
     /// Identifies the key without revealing it.
     pub key_fingerprint: String,
+    /// The keyed hash of unit ids and bounding priorities ([`EventHash::name`]).
+    pub event_hash: &'static str,
     /// Current generation.
     pub generation: u32,
     /// Fingerprint the current generation is pinned to.
@@ -1421,6 +1463,7 @@ pub fn inspect(dir: &Path) -> Result<Summary, StateError> {
     Ok(Summary {
         dir: dir.to_path_buf(),
         format: meta.format,
+        event_hash: meta.event_hash(&dir.join(META))?.name(),
         seeded: meta.seeded,
         key_fingerprint: meta.key_fingerprint,
         generation: g,
@@ -1643,7 +1686,7 @@ zone = ["a", "b"]
             "truncated meta",
         );
         // A newer format.
-        std::fs::write(&meta, good_meta.replace("\"format\": 1", "\"format\": 99")).unwrap();
+        std::fs::write(&meta, good_meta.replace("\"format\": 3", "\"format\": 99")).unwrap();
         assert!(matches!(
             StateDir::open(dir.path(), &cfg(), Some(1)),
             Err(StateError::NewerFormat { .. })
@@ -1679,6 +1722,63 @@ zone = ["a", "b"]
         }
     }
 
+    /// A state written before format 3 (no `event_hash`) keeps hashing events with BLAKE3,
+    /// also after `new-epoch`; a new state records SipHash-2-4; inconsistent records are
+    /// refused.
+    #[test]
+    fn the_event_hash_is_the_one_the_state_records() {
+        let dir = tempfile::tempdir().unwrap();
+        let d = dir.path();
+        let (s, key, _) = StateDir::open(d, &cfg(), Some(1)).unwrap();
+        assert_eq!(key.event_hash(), EventHash::SipHash24);
+        drop(s);
+        let meta = d.join("meta.json");
+        let new_meta = std::fs::read_to_string(&meta).unwrap();
+        assert!(new_meta.contains("\"format\": 3"), "{new_meta}");
+
+        // The same state as an older build wrote it: format 1, no event_hash.
+        let mut legacy: serde_json::Value = serde_json::from_str(&new_meta).unwrap();
+        legacy["format"] = 1.into();
+        legacy.as_object_mut().unwrap().remove("event_hash");
+        std::fs::write(&meta, legacy.to_string()).unwrap();
+        let (s, key, _) = StateDir::open(d, &cfg(), Some(1)).unwrap();
+        assert_eq!(key.event_hash(), EventHash::Blake3);
+        assert_eq!(inspect(d).unwrap().event_hash, "blake3-v1");
+        // new-epoch raises it to format 2 only, and it stays BLAKE3.
+        let cur_cfg = cfg_with(3, 1.0);
+        drop(s);
+        let cur = Current::open(d, Some(1), Some(&cfg())).unwrap();
+        assert_eq!(cur.key.event_hash(), EventHash::Blake3);
+        cur.commit(&cur_cfg, next_generation(1.0)).unwrap();
+        let text = std::fs::read_to_string(&meta).unwrap();
+        assert!(
+            text.contains("\"format\": 2") && !text.contains("event_hash"),
+            "{text}"
+        );
+        let (_s, key, _) = StateDir::open(d, &cur_cfg, Some(1)).unwrap();
+        assert_eq!(key.event_hash(), EventHash::Blake3);
+        drop(_s);
+
+        // Inconsistent records: format 3 without a hash, an unknown hash, a hash in format 2.
+        let mut v: serde_json::Value = serde_json::from_str(&new_meta).unwrap();
+        v.as_object_mut().unwrap().remove("event_hash");
+        let fresh = tempfile::tempdir().unwrap();
+        let f = fresh.path();
+        drop(StateDir::open(f, &cfg(), Some(1)).unwrap());
+        let fmeta = f.join("meta.json");
+        std::fs::write(&fmeta, v.to_string()).unwrap();
+        assert_corrupt(
+            StateDir::open(f, &cfg(), Some(1)),
+            "format 3 without event_hash",
+        );
+        std::fs::write(&fmeta, new_meta.replace("siphash24-v1", "md5")).unwrap();
+        assert_corrupt(StateDir::open(f, &cfg(), Some(1)), "unknown event hash");
+        std::fs::write(&fmeta, new_meta.replace("\"format\": 3", "\"format\": 2")).unwrap();
+        assert_corrupt(StateDir::open(f, &cfg(), Some(1)), "event hash in format 2");
+        std::fs::write(&fmeta, &new_meta).unwrap();
+        assert!(StateDir::open(f, &cfg(), Some(1)).is_ok());
+    }
+
     #[test]
     fn a_generation_is_committed_and_its_damage_refused() {
         let dir = tempfile::tempdir().unwrap();
@@ -1710,7 +1810,8 @@ zone = ["a", "b"]
         assert_eq!(*s.carry(), g.carry());
         drop(s);
         let text = std::fs::read_to_string(d.join("meta.json")).unwrap();
-        assert!(text.contains("\"format\": 2"), "{text}");
+        assert!(text.contains("\"format\": 3"), "{text}");
+        assert!(text.contains("\"event_hash\": \"siphash24-v1\""), "{text}");
 
         // A half-written ledger line (as if a crash tore it, which the atomic rename rules
         // out) is refused, never cut: cutting would resurrect generation 0, whose log is gone.
