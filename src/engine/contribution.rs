@@ -15,7 +15,7 @@
 
 use smallvec::SmallVec;
 
-use crate::engine::event::{Event, Numbers};
+use crate::engine::event::Event;
 use crate::engine::linear;
 use crate::engine::plan::{ComponentPlan, ComponentRole, Plan};
 
@@ -194,10 +194,21 @@ fn contribute(c: &ComponentPlan, ev: &Event, slot: &mut [i128]) {
         } => {
             // Clip in value units, then centre and normalise (see `plan::MomentUnits`) so the
             // packed moments have comparable scales.
-            let mut x: Numbers = features.iter().map(|&i| ev.numbers[i]).collect();
+            // x on the stack for up to 16 features, without a collect (issue 9).
+            let mut small = [0.0f64; 16];
+            let mut large = Vec::new();
+            let x: &mut [f64] = if features.len() <= small.len() {
+                &mut small[..features.len()]
+            } else {
+                large.resize(features.len(), 0.0);
+                &mut large
+            };
+            for (to, &i) in x.iter_mut().zip(features) {
+                *to = ev.numbers[i];
+            }
             let mut y = ev.numbers[*target];
-            units.normalise(&mut x, &mut y);
-            linear::accumulate(layout, &x, y, c.grid_exp, slot);
+            units.normalise(x, &mut y);
+            linear::accumulate(layout, x, y, c.grid_exp, slot);
         }
     }
 }
@@ -205,6 +216,7 @@ fn contribute(c: &ComponentPlan, ev: &Event, slot: &mut [i128]) {
 #[cfg(test)]
 mod tests {
     use super::*;
+    use crate::engine::event::Numbers;
     use crate::config::Config;
     use crate::engine::plan::Plan;
     use crate::engine::time::Millis;
