@@ -216,8 +216,8 @@ fn contribute(c: &ComponentPlan, ev: &Event, slot: &mut [i128]) {
 #[cfg(test)]
 mod tests {
     use super::*;
-    use crate::engine::event::Numbers;
     use crate::config::Config;
+    use crate::engine::event::Numbers;
     use crate::engine::plan::Plan;
     use crate::engine::time::Millis;
 

@@ -1163,7 +1163,11 @@ mod tests {
                 want.extend_from_slice(&x.to_bits().to_le_bytes());
             }
             let got = priority_input(0x0102_0304_0506_0708, &ev);
-            assert_eq!(got.as_slice(), want.as_slice(), "{n_cat} categories, {n_num} numbers");
+            assert_eq!(
+                got.as_slice(),
+                want.as_slice(),
+                "{n_cat} categories, {n_num} numbers"
+            );
         }
     }
 
