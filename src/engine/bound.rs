@@ -139,12 +139,13 @@ impl<T> WindowBuffer<T> {
 }
 
 /// Hasher for the bounder's tables, whose keys are unit hashes: outputs of the engine's
-/// keyed BLAKE3 hash, so already uniform 64-bit values that nobody without the key can
-/// steer. Hashing them again with SipHash (the std default, a defence against chosen keys)
-/// buys nothing; one multiplication by an odd constant (a bijection, so distinct keys stay
-/// distinct) with the high half folded down keeps both the low bits hashbrown indexes with
-/// and the top bits it tags with well mixed. The table's iteration order is therefore
-/// deterministic, but nothing depends on it: window aggregates are exact integer sums.
+/// keyed hash (SipHash-2-4, or BLAKE3 in older states), so already uniform 64-bit values
+/// that nobody without the key can steer. Hashing them again with SipHash (the std default,
+/// a defence against chosen keys) buys nothing; one multiplication by an odd constant (a
+/// bijection, so distinct keys stay distinct) with the high half folded down keeps both the
+/// low bits hashbrown indexes with and the top bits it tags with well mixed. The table's
+/// iteration order is therefore deterministic, but nothing depends on it: window
+/// aggregates are exact integer sums.
 #[derive(Clone, Copy, Debug, Default)]
 pub struct UnitKeyHasher(u64);
 
