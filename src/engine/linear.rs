@@ -300,12 +300,13 @@ fn l2_norm(x: &[f64]) -> f64 {
 /// no square root, so [`clip`] skips the careful norm for the common vector inside the
 /// bound, with the same outcome (the norm is only compared with the bound).
 ///
-/// Derivation. For finite x the computed S = fl(Σ x_i²) satisfies Σ x_i² ≤ S(1 + γ) + d·2^-1022
-/// with γ = (d+1)·2^-53 < 2^-42 for d ≤ [`MAX_FEATURES`] (Higham 2002, "Accuracy and
-/// Stability of Numerical Algorithms", §3.1, recursive summation of rounded squares; the
-/// second term covers squares that underflow). The test S ≤ fl(b²)·(1 − 2^-30) with
-/// 2^-400 ≤ b ≤ 2^400 (so b² is finite and normal) then gives ‖x‖ < b(1 − 2^-32), and [`l2_norm`] is within a relative
-/// (d+4)·2^-53 < 2^-42 of ‖x‖ (see [`ROUNDING_MARGIN`]), so it returns at most b.
+/// Derivation. For finite x the computed S = fl(Σ x_i²) satisfies
+/// Σ x_i² ≤ S(1 + γ) + d·2^-1022 with γ = (d+1)·2^-53 < 2^-42 for d ≤ [`MAX_FEATURES`]
+/// (Higham 2002, "Accuracy and Stability of Numerical Algorithms", §3.1, recursive
+/// summation of rounded squares; the second term covers squares that underflow). The test
+/// S ≤ fl(b²)·(1 − 2^-30) with 2^-400 ≤ b ≤ 2^400 (so b² is finite and normal) then gives
+/// ‖x‖ < b(1 − 2^-32), and [`l2_norm`] is within a relative (d+4)·2^-53 < 2^-42 of ‖x‖
+/// (see [`ROUNDING_MARGIN`]), so it returns at most b.
 fn surely_within_norm(x: &[f64], b: f64) -> bool {
     const MARGIN: f64 = 1.0 - 1.0 / (1u64 << 30) as f64;
     const B_MIN: f64 = f64::from_bits((1023 - 400) << 52);
@@ -392,9 +393,10 @@ fn product_units(a: f64, b: f64, scale: f64) -> i128 {
 }
 
 /// Smallest and largest nonzero magnitudes for which [`two_product_err`] is exact: 2^-450
-/// and 2^450. Splitting multiplies by 2^27 + 1, far from overflow below 2^450, and every
-/// partial product of two such factors is at least 2^-900 · 2^-53 in magnitude or zero,
-/// above the smallest normal 2^-1022, so nothing underflows.
+/// and 2^450. Splitting multiplies by 2^27 + 1, far from overflow below 2^450. Each part of
+/// a split factor is zero or a multiple of the factor's ulp (at least 2^-502), so every
+/// partial product is zero or at least 2^-1004 in magnitude, above the smallest normal
+/// 2^-1022: nothing underflows.
 const SPLIT_MIN: f64 = f64::from_bits((1023 - 450) << 52);
 const SPLIT_MAX: f64 = f64::from_bits((1023 + 450) << 52);
 
