@@ -195,14 +195,8 @@ fn contribute(c: &ComponentPlan, ev: &Event, slot: &mut [i128]) {
             // Clip in value units, then centre and normalise (see `plan::MomentUnits`) so the
             // packed moments have comparable scales.
             // x on the stack for up to 16 features, without a collect (issue 9).
-            let mut small = [0.0f64; 16];
-            let mut large = Vec::new();
-            let x: &mut [f64] = if features.len() <= small.len() {
-                &mut small[..features.len()]
-            } else {
-                large.resize(features.len(), 0.0);
-                &mut large
-            };
+            let (mut small, mut large) = ([0.0f64; 16], Vec::new());
+            let x = linear::scratch(&mut small, &mut large, features.len());
             for (to, &i) in x.iter_mut().zip(features) {
                 *to = ev.numbers[i];
             }

@@ -850,28 +850,52 @@ const STRING_STOP: [bool; 256] = {
     table
 };
 
-/// The position of the first [`STRING_STOP`] byte, eight bytes at a time (SWAR: a byte is
-/// found by the borrow of a per-byte subtraction; a false mark can only follow a true one,
-/// so the lowest mark is exact), the last few bytes one at a time.
-#[inline]
-fn string_stop(bytes: &[u8]) -> Option<usize> {
-    const ONES: u64 = 0x0101_0101_0101_0101;
-    const HIGHS: u64 = 0x8080_8080_8080_8080;
+/// `0x01` in every byte of a word.
+pub(crate) const SWAR_ONES: u64 = 0x0101_0101_0101_0101;
+/// `0x80` in every byte of a word.
+const SWAR_HIGHS: u64 = 0x8080_8080_8080_8080;
+
+/// Marks, in bit 7 of each byte, the zero bytes of `x` (Mycroft's test: the borrow of a
+/// per-byte subtraction). A false mark can only sit above a true one, so the lowest mark is
+/// exact. OR several such masks to search for several byte classes at once.
+#[inline(always)]
+pub(crate) fn swar_zero_bytes(x: u64) -> u64 {
+    x.wrapping_sub(SWAR_ONES) & !x
+}
+
+/// The position of the first byte that `word_marks` marks (see [`swar_zero_bytes`]) in
+/// `bytes`, eight bytes at a time, with `is_stop` the same test for one byte for the last
+/// few bytes.
+#[inline(always)]
+pub(crate) fn swar_position(
+    bytes: &[u8],
+    word_marks: impl Fn(u64) -> u64,
+    is_stop: impl Fn(u8) -> bool,
+) -> Option<usize> {
     let (words, tail) = bytes.as_chunks::<8>();
     for (i, word) in words.iter().enumerate() {
-        let w = u64::from_le_bytes(*word);
-        let quote = w ^ (ONES * u64::from(b'"'));
-        let backslash = w ^ (ONES * u64::from(b'\\'));
-        let marks = (quote.wrapping_sub(ONES) & !quote)
-            | (backslash.wrapping_sub(ONES) & !backslash)
-            | (w.wrapping_sub(ONES * 0x20) & !w);
-        let marks = marks & HIGHS;
+        let marks = word_marks(u64::from_le_bytes(*word)) & SWAR_HIGHS;
         if marks != 0 {
             return Some(8 * i + (marks.trailing_zeros() / 8) as usize);
         }
     }
-    let at = tail.iter().position(|&b| STRING_STOP[usize::from(b)])?;
+    let at = tail.iter().position(|&b| is_stop(b))?;
     Some(8 * words.len() + at)
+}
+
+/// The position of the first [`STRING_STOP`] byte: a quote, a backslash or a control byte
+/// (below 0x20, found as a borrow of subtracting 0x20 from a byte without its top bit).
+#[inline]
+fn string_stop(bytes: &[u8]) -> Option<usize> {
+    swar_position(
+        bytes,
+        |w| {
+            swar_zero_bytes(w ^ (SWAR_ONES * u64::from(b'"')))
+                | swar_zero_bytes(w ^ (SWAR_ONES * u64::from(b'\\')))
+                | (w.wrapping_sub(SWAR_ONES * 0x20) & !w)
+        },
+        |b| STRING_STOP[usize::from(b)],
+    )
 }
 
 /// 10^0 ..= 10^22, each exact in binary64 (5^22 < 2^53), for Clinger's fast path.

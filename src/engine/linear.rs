@@ -498,14 +498,8 @@ pub fn accumulate(layout: &Layout, x: &[f64], y: f64, grid_exp: i32, acc: &mut [
     );
     let scale = pow2(-grid_exp);
     // z = (1, x, y) or (x, y): on the stack up to 16 entries (d ≤ 14), on the heap beyond.
-    let mut small = [0.0f64; 16];
-    let mut large = Vec::new();
-    let z: &mut [f64] = if layout.z_len() <= small.len() {
-        &mut small[..layout.z_len()]
-    } else {
-        large.resize(layout.z_len(), 0.0);
-        &mut large
-    };
+    let (mut small, mut large) = ([0.0f64; 16], Vec::new());
+    let z = scratch(&mut small, &mut large, layout.z_len());
     let offset = usize::from(layout.intercept);
     if layout.intercept {
         z[0] = 1.0;
@@ -526,6 +520,23 @@ pub fn accumulate(layout: &Layout, x: &[f64], y: f64, grid_exp: i32, acc: &mut [
             acc[idx] = acc[idx].saturating_add(units);
             idx += 1;
         }
+    }
+}
+
+/// `len` zeros: the first `len` entries of `small` when they suffice, else `large` resized.
+/// For per-event vectors that must not allocate in the usual case (issue 9).
+#[inline]
+pub(crate) fn scratch<'a>(
+    small: &'a mut [f64; 16],
+    large: &'a mut Vec<f64>,
+    len: usize,
+) -> &'a mut [f64] {
+    if len <= small.len() {
+        &mut small[..len]
+    } else {
+        large.clear();
+        large.resize(len, 0.0);
+        large
     }
 }
 

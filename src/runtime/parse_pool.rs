@@ -28,6 +28,7 @@ use std::io::{self, Read};
 use std::sync::{Condvar, Mutex, MutexGuard, PoisonError};
 
 use crate::engine::core::{LineDecoder, Prepared};
+use crate::engine::event::{SWAR_ONES, swar_position, swar_zero_bytes};
 
 /// Target size of one chunk of input: about 450 demo lines, a millisecond of parsing. The
 /// few lock operations per chunk cost nothing next to that, and a chunk held by a thread
@@ -173,24 +174,15 @@ fn decode_job(decoder: &LineDecoder, job: &mut Job) {
     }
 }
 
-/// The position of the first `\n` in `bytes`: eight bytes at a time (a zero byte of
-/// `w ^ 0x0a0a…` sets its high bit in `(x − 0x0101…) & !x & 0x8080…`, and only a zero byte
-/// or one above an earlier zero byte can: Mycroft's test, as in `event::string_stop`), the
-/// tail one byte at a time. A byte-by-byte split cost 6% of a two-thread replay (issue 9).
+/// The position of the first `\n` in `bytes`, eight bytes at a time
+/// ([`swar_position`]). A byte-by-byte split cost 6% of a two-thread replay (issue 9).
 #[inline]
 fn find_newline(bytes: &[u8]) -> Option<usize> {
-    const ONES: u64 = 0x0101_0101_0101_0101;
-    const HIGHS: u64 = 0x8080_8080_8080_8080;
-    let (words, tail) = bytes.as_chunks::<8>();
-    for (i, word) in words.iter().enumerate() {
-        let x = u64::from_le_bytes(*word) ^ (ONES * u64::from(b'\n'));
-        let marks = x.wrapping_sub(ONES) & !x & HIGHS;
-        if marks != 0 {
-            return Some(8 * i + (marks.trailing_zeros() / 8) as usize);
-        }
-    }
-    let at = tail.iter().position(|&b| b == b'\n')?;
-    Some(8 * words.len() + at)
+    swar_position(
+        bytes,
+        |w| swar_zero_bytes(w ^ (SWAR_ONES * u64::from(b'\n'))),
+        |b| b == b'\n',
+    )
 }
 
 fn worker(shared: &Shared, decoder: &LineDecoder) {
