@@ -165,23 +165,9 @@ pub fn pump_with_progress<R: Read>(
     if threads > 1 {
         return pump_parallel(engine, input, sink, threads, progress);
     }
-    let mut reader = BufReader::with_capacity(1 << 20, input);
-    let mut line = Vec::with_capacity(4096);
-    let (mut n_lines, mut n_releases) = (0u64, 0u64);
-    loop {
-        line.clear();
-        if reader.read_until(b'\n', &mut line)? == 0 {
-            break;
-        }
-        n_lines += 1;
-        let mut body: &[u8] = &line;
-        if let Some(b) = body.strip_suffix(b"\n") {
-            body = b;
-        }
-        if let Some(b) = body.strip_suffix(b"\r") {
-            body = b;
-        }
-        engine.handle_line(body);
+    let mut n_releases = 0u64;
+    let n_lines = crate::runtime::parse_pool::for_each_line(input, |line| {
+        engine.handle_line(line);
         while let Some(r) = engine.poll_release() {
             sink.publish(&r)?;
             n_releases += 1;
@@ -191,7 +177,8 @@ pub fn pump_with_progress<R: Read>(
         {
             p.draw(engine.counters().accepted);
         }
-    }
+        Ok(())
+    })?;
     engine.finish();
     while let Some(r) = engine.poll_release() {
         sink.publish(&r)?;

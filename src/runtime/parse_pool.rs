@@ -139,24 +139,32 @@ impl<R: Read> ChunkReader<R> {
             } else {
                 filled / 2
             };
-            buf.resize(filled + want, 0);
-            match self.input.read(&mut buf[filled..]) {
-                Ok(n) => {
-                    buf.truncate(filled + n);
-                    self.eof = n == 0;
-                }
-                Err(e) if e.kind() == io::ErrorKind::Interrupted => buf.truncate(filled),
-                Err(e) => return Err(e),
-            }
+            // `read_to_end` on a `take` fills up to `want` bytes without zeroing them first
+            // (a 64 KiB memset per chunk otherwise), retries interrupted reads, and reads
+            // fewer only at the end of the input.
+            buf.reserve(want);
+            let n = (&mut self.input).take(want as u64).read_to_end(&mut buf)?;
+            self.eof = n < want;
         }
     }
 }
 
-/// Prepares every line of `job.bytes` into `job.verdicts`, with the line rules of
-/// [`crate::app::pump`]: a line ends at `\n` (the last one may lack it) and one trailing
-/// `\r` is removed.
+/// Prepares every line of `job.bytes` into `job.verdicts` ([`split_lines`]).
 fn decode_job(decoder: &LineDecoder, job: &mut Job) {
-    let bytes: &[u8] = &job.bytes;
+    let Job {
+        bytes, verdicts, ..
+    } = job;
+    split_lines(bytes, |line| {
+        verdicts.push(decoder.prepare(line));
+        Ok(())
+    })
+    .unwrap_or(());
+}
+
+/// Calls `each` with every line of a chunk, with the line rules of [`crate::app::pump`]:
+/// a line ends at `\n` (the last one may lack it) and one trailing `\r` is removed. Stops
+/// at the first error of `each`.
+fn split_lines(bytes: &[u8], mut each: impl FnMut(&[u8]) -> io::Result<()>) -> io::Result<()> {
     // A chunk is never empty; when it ends with '\n' that newline closes the last line
     // instead of starting an empty one.
     let mut body = bytes.strip_suffix(b"\n").unwrap_or(bytes);
@@ -165,13 +173,36 @@ fn decode_job(decoder: &LineDecoder, job: &mut Job) {
             Some(at) => (&body[..at], Some(&body[at + 1..])),
             None => (body, None),
         };
-        let line = line.strip_suffix(b"\r").unwrap_or(line);
-        job.verdicts.push(decoder.prepare(line));
+        each(line.strip_suffix(b"\r").unwrap_or(line))?;
         match rest {
             Some(rest) => body = rest,
-            None => break,
+            None => return Ok(()),
         }
     }
+}
+
+/// Calls `each` with every line of `input` on the calling thread, reading it in chunks of
+/// whole lines: the same lines as `BufRead::read_until(b'\n')` with a trailing `\n` and
+/// then `\r` removed, without copying each line out of the read buffer (issue 9: the
+/// one-thread replay). Returns the number of lines; stops at the first error.
+pub fn for_each_line<R: Read>(
+    input: R,
+    mut each: impl FnMut(&[u8]) -> io::Result<()>,
+) -> io::Result<u64> {
+    let mut reader = ChunkReader {
+        input,
+        carry: Vec::new(),
+        eof: false,
+    };
+    let (mut buf, mut n_lines) = (Vec::new(), 0u64);
+    while let Some(chunk) = reader.next_chunk(buf)? {
+        split_lines(&chunk, |line| {
+            n_lines += 1;
+            each(line)
+        })?;
+        buf = chunk;
+    }
+    Ok(n_lines)
 }
 
 /// The position of the first `\n` in `bytes`, eight bytes at a time
@@ -360,6 +391,19 @@ mod tests {
         }
     }
 
+    /// The verdicts of the lines [`for_each_line`] yields, reading `step` bytes at a time.
+    fn lines_of(input: &[u8], step: usize) -> Vec<Verdict> {
+        let decoder = decoder();
+        let mut out = Vec::new();
+        let n = for_each_line(Trickle { data: input, step }, |line| {
+            out.push(decoder.prepare(line));
+            Ok(())
+        })
+        .expect("in memory");
+        assert_eq!(n as usize, out.len());
+        out
+    }
+
     /// A reader that hands out at most `step` bytes per call, as a pipe would.
     struct Trickle<'a> {
         data: &'a [u8],
@@ -428,6 +472,13 @@ mod tests {
                 );
             }
         }
+        for step in [usize::MAX, 4093, 1] {
+            assert_eq!(
+                lines_of(&input, step),
+                expected,
+                "one thread, read size {step}"
+            );
+        }
     }
 
     #[test]
@@ -448,6 +499,7 @@ mod tests {
                 sequential(input, &decoder),
                 "{input:?}"
             );
+            assert_eq!(lines_of(input, 1), sequential(input, &decoder), "{input:?}");
         }
     }
 
