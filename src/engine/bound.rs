@@ -3,7 +3,7 @@
 //!
 //! # Why the choice of survivors is safe and unbiased
 //! Removing one unit from the input must change only that unit's own contribution
-//! (privacy-math §8, [D]). Every decision here looks at one unit's own events only:
+//! (privacy-math §8, \[D\]). Every decision here looks at one unit's own events only:
 //!
 //! - **Events per window.** Each event has a priority, a keyed hash of the unit and the
 //!   event's content (time, categories, numbers). The `k` events with the smallest
@@ -236,7 +236,7 @@ impl<T> Bounder<T> {
 
     /// Offers an event of `unit` for window `window_idx`. Returns the number of events of
     /// that window dropped by the per-window bound now (by a compaction of its buffer, see
-    /// [`WindowBuffer`]); the others are counted when the window closes. Which events
+    /// `WindowBuffer`); the others are counted when the window closes. Which events
     /// survive does not depend on when compactions happen. `priority` gives an event's
     /// bounding priority (see the module notes); it is called only for units with more
     /// than `k` events in the window, and must be a function of the event alone.
@@ -349,7 +349,7 @@ impl<T> Bounder<T> {
     }
 
     /// Events buffered in open windows (at most about twice `k` per unit and window, see
-    /// [`WindowBuffer`]).
+    /// `WindowBuffer`).
     pub fn retained_events(&self) -> usize {
         self.open.values().map(|w| w.events.len()).sum()
     }

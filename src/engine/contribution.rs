@@ -24,7 +24,7 @@ use crate::engine::plan::{ComponentPlan, ComponentRole, Plan};
 /// sizes are far below `u32::MAX`: configuration caps keys per field).
 const NOT_PART: u32 = u32::MAX;
 
-/// One event's contribution: per statistic its group (or [`NOT_PART`]), and per component,
+/// One event's contribution: per statistic its group (or `NOT_PART`), and per component,
 /// in plan order, its grid values (`dim` each, zeros for statistics it is not part of).
 ///
 /// Grid values are i128 (the aggregates' type), but one event's values fit i64 for any

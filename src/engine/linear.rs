@@ -1442,7 +1442,7 @@ fn unshift(layout: &Layout, mut coefficients: Vec<f64>, shift: Option<&Shift>) -
 }
 
 /// [`fit`] of statistics accumulated on centred data (`shift`), with coefficients and
-/// standard errors reported for the uncentred model ([`unshift`]). `shift` is ignored without
+/// standard errors reported for the uncentred model (`unshift`). `shift` is ignored without
 /// an intercept. The numerics are those of [`fit`]. The centres come from the configuration,
 /// not the data, so centring costs no budget, and mapping back is post-processing.
 pub fn fit_shifted<R: Rng + ?Sized>(

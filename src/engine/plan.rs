@@ -550,7 +550,7 @@ pub fn moment_unit(b: f64) -> f64 {
 /// instead of 32, the same data have four times the second moments against the same noise.
 /// The centres come from the configuration, never from the data, so they cost no budget, and
 /// with an intercept the fit is equivariant under the shift: slopes are unchanged and the
-/// intercept is mapped back exactly ([`linear::fit`] with [`linear::Centring`]).
+/// intercept is mapped back exactly ([`linear::fit_shifted`]).
 #[derive(Clone, Debug, PartialEq)]
 pub struct MomentUnits {
     /// Unit u_j of each feature.

@@ -136,7 +136,7 @@ pub struct Statistics {
     /// Standard deviation of the noise of every coordinate (they are independent).
     pub std_error: f64,
     /// Unit of each component of z = (1, features…, target): statistics are in normalised
-    /// units, z'_a = (z_a − centres[a]) / scales[a], and coordinate (a, b) is Σ z'_a z'_b.
+    /// units, z'_a = (z_a − centres\[a\]) / scales\[a\], and coordinate (a, b) is Σ z'_a z'_b.
     pub scales: Vec<f64>,
     /// Centre of each component of z, in value units (0 for the constant and whenever the
     /// configuration gives no ranges): see `scales`.
