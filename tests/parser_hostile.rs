@@ -21,7 +21,7 @@ use proptest::prelude::*;
 use rand::rngs::ChaCha20Rng;
 use rand::seq::{IndexedRandom, SliceRandom};
 use rand::{RngExt, SeedableRng};
-use scrim::engine::event::{Event, LineParser, RejectReason, Rejection, Schema};
+use scrim::engine::event::{Event, LineParser, RejectReason, Rejection, Schema, same_parse_result};
 use scrim::engine::time::{MAX_EVENT_TIME, Millis};
 
 const ZONES: [&str; 5] = [
@@ -147,7 +147,7 @@ fn corpus_lines_have_their_expected_reasons() {
         let parsed = parser.parse(&line, &test_hash);
         // serde_json's path is the reference the fast path must match exactly.
         let reference = parser.parse_serde(&line, &test_hash);
-        if !same_result(&parsed, &reference) {
+        if !same_parse_result(&parsed, &reference) {
             failures.push(format!(
                 "{}: parse {parsed:?} but parse_serde {reference:?}",
                 case.file
@@ -865,27 +865,6 @@ fn oracle_event(line: &[u8]) -> Option<Event> {
     })
 }
 
-/// Results compare with numbers bit for bit and rejections by reason and field.
-fn same_result(a: &Result<Event, Rejection>, b: &Result<Event, Rejection>) -> bool {
-    match (a, b) {
-        (Ok(x), Ok(y)) => same_event(x, y),
-        (Err(x), Err(y)) => x == y,
-        _ => false,
-    }
-}
-
-/// Events compare with numbers bit for bit (so -0.0 and 0.0 differ).
-fn same_event(a: &Event, b: &Event) -> bool {
-    a.time == b.time
-        && a.unit == b.unit
-        && a.categories == b.categories
-        && a.numbers.len() == b.numbers.len()
-        && a.numbers
-            .iter()
-            .zip(&b.numbers)
-            .all(|(x, y)| x.to_bits() == y.to_bits())
-}
-
 /// 100,000 generated hostile lines: no panic, every rejection well-formed and free of line
 /// content, and the exact outcome wherever the generator knows it. Seeded, so a failure
 /// reproduces; the message names the line's index and family.
@@ -910,7 +889,7 @@ fn generated_hostile_lines_are_classified_without_panics() {
         };
         // The fast path (inside `parse`) must give exactly serde_json's verdict.
         match catch_unwind(AssertUnwindSafe(|| parser.parse_serde(&line, &test_hash))) {
-            Ok(reference) if same_result(&parsed, &reference) => {}
+            Ok(reference) if same_parse_result(&parsed, &reference) => {}
             Ok(reference) => failures.push(format!(
                 "#{line_idx} {family}: parse {parsed:?} but parse_serde {reference:?} for {:?}",
                 shown()
@@ -931,7 +910,7 @@ fn generated_hostile_lines_are_classified_without_panics() {
             failures.push(format!("#{line_idx} {family}: {problem}"));
         }
         match (&expect, &parsed) {
-            (Expect::Accept(want), Ok(got)) if same_event(want, got) => {}
+            (Expect::Accept(want), Ok(got)) if want.same_bits(got) => {}
             (Expect::Reject(reason, field), Err(got))
                 if got.reason == *reason && got.field.as_deref() == *field => {}
             (Expect::Anything, _) => {}
@@ -948,7 +927,7 @@ fn generated_hostile_lines_are_classified_without_panics() {
         {
             n_oracle_checked += 1;
             match oracle_event(&line) {
-                Some(oracle) if same_event(&oracle, event) => {}
+                Some(oracle) if oracle.same_bits(event) => {}
                 oracle => failures.push(format!(
                     "#{line_idx} {family}: accepted {event:?} but serde_json::Value reads {oracle:?} from {:?}",
                     shown()
@@ -1056,7 +1035,7 @@ proptest! {
         let event = demo_parser().parse(line.as_bytes(), &test_hash);
         let reference = demo_parser().parse_serde(line.as_bytes(), &test_hash);
         prop_assert!(
-            same_result(&event, &reference),
+            same_parse_result(&event, &reference),
             "{line}: parse {event:?}, parse_serde {reference:?}"
         );
         let want = Event {
@@ -1066,7 +1045,7 @@ proptest! {
             numbers: numbers.into_iter().collect(),
         };
         prop_assert!(
-            event.as_ref().is_ok_and(|got| same_event(got, &want)),
+            event.as_ref().is_ok_and(|got| got.same_bits(&want)),
             "{line} parsed as {event:?}, want {want:?}"
         );
     }

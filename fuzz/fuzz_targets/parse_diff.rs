@@ -8,34 +8,17 @@
 #![no_main]
 
 use libfuzzer_sys::fuzz_target;
-use scrim::engine::event::Event;
+use scrim::engine::event::same_parse_result;
 
 #[path = "common/demo_parser.rs"]
 mod demo_parser;
 use demo_parser::{parser, unit_hash};
 
-/// Events compare with numbers bit for bit.
-fn same_event(a: &Event, b: &Event) -> bool {
-    a.time == b.time
-        && a.unit == b.unit
-        && a.categories == b.categories
-        && a.numbers.len() == b.numbers.len()
-        && a.numbers
-            .iter()
-            .zip(&b.numbers)
-            .all(|(x, y)| x.to_bits() == y.to_bits())
-}
-
 fuzz_target!(|data: &[u8]| {
     let fast = parser().parse(data, &unit_hash);
     let reference = parser().parse_serde(data, &unit_hash);
-    let same = match (&fast, &reference) {
-        (Ok(x), Ok(y)) => same_event(x, y),
-        (Err(x), Err(y)) => x == y,
-        _ => false,
-    };
     assert!(
-        same,
+        same_parse_result(&fast, &reference),
         "parse {fast:?} but parse_serde {reference:?} on {:?}",
         String::from_utf8_lossy(data)
     );

@@ -113,6 +113,33 @@ pub struct Event {
     pub numbers: Numbers,
 }
 
+impl Event {
+    /// Whether two events are identical with numbers compared bit for bit (so `-0.0` and
+    /// `0.0` differ): the identity the parser's fast and serde_json paths promise, checked by
+    /// the unit tests, `tests/parser_hostile.rs` and the `parse_diff` fuzz target.
+    pub fn same_bits(&self, other: &Event) -> bool {
+        self.time == other.time
+            && self.unit == other.unit
+            && self.categories == other.categories
+            && self.numbers.len() == other.numbers.len()
+            && self
+                .numbers
+                .iter()
+                .zip(&other.numbers)
+                .all(|(x, y)| x.to_bits() == y.to_bits())
+    }
+}
+
+/// Whether two parse results are identical: events by [`Event::same_bits`], rejections by
+/// reason and field.
+pub fn same_parse_result(a: &Result<Event, Rejection>, b: &Result<Event, Rejection>) -> bool {
+    match (a, b) {
+        (Ok(x), Ok(y)) => x.same_bits(y),
+        (Err(x), Err(y)) => x == y,
+        _ => false,
+    }
+}
+
 /// Why a schema cannot be turned into a parser.
 #[derive(Clone, Debug, PartialEq, Eq, thiserror::Error)]
 #[non_exhaustive]
@@ -2167,24 +2194,6 @@ mod tests {
     // same per-key logic). RFC 8259 is the reference for the grammar.
     // -----------------------------------------------------------------------------------
 
-    /// Results compare with numbers bit for bit (so -0.0 and 0.0 differ).
-    fn same_result(a: &Result<Event, Rejection>, b: &Result<Event, Rejection>) -> bool {
-        match (a, b) {
-            (Ok(x), Ok(y)) => {
-                x.time == y.time
-                    && x.unit == y.unit
-                    && x.categories == y.categories
-                    && x.numbers.len() == y.numbers.len()
-                    && x.numbers
-                        .iter()
-                        .zip(&y.numbers)
-                        .all(|(p, q)| p.to_bits() == q.to_bits())
-            }
-            (Err(x), Err(y)) => x == y,
-            _ => false,
-        }
-    }
-
     /// Checks that `parse` and the fast path's own answer (when it gives one) equal
     /// `parse_serde` on `line`, and returns the fast path's answer (`None`: it gave up).
     #[track_caller]
@@ -2193,14 +2202,14 @@ mod tests {
         let reference = parser.parse_serde(line.as_bytes(), &test_hash);
         let full = parser.parse(line.as_bytes(), &test_hash);
         assert!(
-            same_result(&full, &reference),
+            same_parse_result(&full, &reference),
             "{line:?}: parse {full:?}, parse_serde {reference:?}"
         );
         let text = parser.object_text(line.as_bytes()).ok()?;
         let fast = parser.parse_fast(text, &test_hash);
         if let Some(fast) = &fast {
             assert!(
-                same_result(fast, &reference),
+                same_parse_result(fast, &reference),
                 "{line:?}: fast path {fast:?}, parse_serde {reference:?}"
             );
         }
@@ -2463,7 +2472,7 @@ mod tests {
             let fast_calls = calls.replace(Vec::new());
             let reference = parser.parse_serde(line.as_bytes(), &recorder);
             let reference_calls = calls.replace(Vec::new());
-            assert!(same_result(&fast, &reference), "{line}");
+            assert!(same_parse_result(&fast, &reference), "{line}");
             assert_eq!(fast_calls, reference_calls, "{line}");
             assert!(fast_calls.len() <= 1, "{line}");
         }
@@ -2633,6 +2642,19 @@ mod tests {
         }
     }
 
+    /// Both parse paths on `line`, compared bit for bit (the proptests below).
+    fn paths_agree(line: &[u8]) -> Result<(), TestCaseError> {
+        let parser = demo_parser();
+        let fast = parser.parse(line, &test_hash);
+        let reference = parser.parse_serde(line, &test_hash);
+        prop_assert!(
+            same_parse_result(&fast, &reference),
+            "{:?}: parse {fast:?}, parse_serde {reference:?}",
+            String::from_utf8_lossy(line)
+        );
+        Ok(())
+    }
+
     proptest! {
         #![proptest_config(ProptestConfig::with_cases(4000))]
 
@@ -2640,14 +2662,7 @@ mod tests {
         /// on generated lines, valid and broken, bit for bit.
         #[test]
         fn fast_and_serde_paths_agree_on_generated_lines(line in generated_line()) {
-            let parser = demo_parser();
-            let fast = parser.parse(&line, &test_hash);
-            let reference = parser.parse_serde(&line, &test_hash);
-            prop_assert!(
-                same_result(&fast, &reference),
-                "{:?}: parse {fast:?}, parse_serde {reference:?}",
-                String::from_utf8_lossy(&line)
-            );
+            paths_agree(&line)?;
         }
 
         /// The same on valid demo lines (every field's value drawn from the pieces) with
@@ -2666,14 +2681,7 @@ mod tests {
         ) {
             let mut line = with_field(field, Some(&value)).into_bytes();
             apply_edits(&mut line, &edits);
-            let parser = demo_parser();
-            let fast = parser.parse(&line, &test_hash);
-            let reference = parser.parse_serde(&line, &test_hash);
-            prop_assert!(
-                same_result(&fast, &reference),
-                "{:?}: parse {fast:?}, parse_serde {reference:?}",
-                String::from_utf8_lossy(&line)
-            );
+            paths_agree(&line)?;
         }
     }
 
