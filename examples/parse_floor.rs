@@ -7,20 +7,22 @@
 //! now beat the floor; the ratio of the two is still the cost of everything after parsing
 //! measured against a serde_json reader.
 //!
-//! Run: `cargo run --release --example parse_floor -- FEED [--fast] [--keyed-hash]`
+//! Run: `cargo run --release --example parse_floor -- FEED [--fast [--no-shape]] [--keyed-hash]`
 //!
-//! `--fast` parses with [`LineParser::parse`] instead (what `scrim replay` does), so the
-//! two rates can be printed side by side.
+//! `--fast` parses with [`LineParser::parse_with_shape`] instead (what `scrim replay` does:
+//! the fast path, and lines laid out like the ones before them read along their learned
+//! [`LineShape`](scrim::engine::event::LineShape)), so the two rates can be printed side by
+//! side. `--no-shape` makes it [`LineParser::parse`] (the fast path alone).
 //!
 //! The parser needs a function that maps a raw unit id to a `u64`. By default the floor
-//! uses 64-bit FNV-1a (a few cycles per byte, not keyed), because the keyed BLAKE3 hash
-//! scrim applies is privacy work, not deserialisation, and belongs to scrim's side of the
-//! ratio. `--keyed-hash` parses through [`scrim::engine::core::LineDecoder`] instead
-//! (scrim's keyed hash, and therefore [`LineParser::parse`], exactly as `scrim replay`;
-//! `--fast` is implied), which shows how much of scrim's time the unit hash takes.
+//! uses 64-bit FNV-1a (a few cycles per byte, not keyed), because the keyed hash scrim
+//! applies (SipHash-2-4, or BLAKE3 in older states) is privacy work, not deserialisation,
+//! and belongs to scrim's side of the ratio. `--keyed-hash` parses through
+//! [`scrim::engine::core::LineDecoder`] instead (scrim's keyed hash, exactly as `scrim
+//! replay`; `--fast` is implied), which shows how much of scrim's time the unit hash takes.
 //!
 //! Output (stdout, one line):
-//! `lines=N ok=N rejected=N seconds=S lines_per_s=R hash=H parser=serde|fast`.
+//! `lines=N ok=N rejected=N seconds=S lines_per_s=R hash=fnv1a|keyed parser=serde|fast|shape`.
 
 use std::io::{BufRead, BufReader};
 use std::process::ExitCode;
@@ -28,7 +30,7 @@ use std::process::ExitCode;
 use scrim::config::Config;
 #[cfg(doc)]
 use scrim::engine::event::LineParser;
-use scrim::engine::event::{Event, Rejection};
+use scrim::engine::event::{Event, LineShape, Rejection};
 use scrim::engine::noise::NoiseKey;
 use scrim::engine::{Engine, EngineOptions};
 
@@ -58,8 +60,10 @@ fn main() -> ExitCode {
     let args: Vec<String> = std::env::args().skip(1).collect();
     let keyed = args.iter().any(|a| a == "--keyed-hash");
     let fast = keyed || args.iter().any(|a| a == "--fast");
+    let shaped = fast && !args.iter().any(|a| a == "--no-shape");
+    let mut shape = LineShape::new();
     let Some(path) = args.iter().find(|a| !a.starts_with("--")) else {
-        eprintln!("usage: parse_floor FEED [--fast] [--keyed-hash]");
+        eprintln!("usage: parse_floor FEED [--fast [--no-shape]] [--keyed-hash]");
         return ExitCode::from(2);
     };
     // The demo configuration is the one the benchmark replays; the engine builds the parser
@@ -108,8 +112,14 @@ fn main() -> ExitCode {
         if let Some(b) = body.strip_suffix(b"\r") {
             body = b;
         }
-        let parsed: Result<Event, Rejection> = if keyed {
+        let parsed: Result<Event, Rejection> = if keyed && shaped {
+            decoder.decode_with(body, &mut shape)
+        } else if keyed {
             decoder.decode(body)
+        } else if shaped {
+            decoder
+                .parser()
+                .parse_with_shape(body, &fnv1a64, &mut shape)
         } else if fast {
             decoder.parser().parse(body, &fnv1a64)
         } else {
@@ -129,8 +139,12 @@ fn main() -> ExitCode {
         "lines={n_lines} ok={n_ok} rejected={} seconds={seconds:.3} lines_per_s={:.0} hash={} parser={}",
         n_lines - n_ok,
         n_lines as f64 / seconds,
-        if keyed { "keyed-blake3" } else { "fnv1a" },
-        if fast { "fast" } else { "serde" }
+        if keyed { "keyed" } else { "fnv1a" },
+        match (fast, shaped) {
+            (true, true) => "shape",
+            (true, false) => "fast",
+            _ => "serde",
+        }
     );
     ExitCode::SUCCESS
 }

@@ -21,7 +21,9 @@ use proptest::prelude::*;
 use rand::rngs::ChaCha20Rng;
 use rand::seq::{IndexedRandom, SliceRandom};
 use rand::{RngExt, SeedableRng};
-use scrim::engine::event::{Event, LineParser, RejectReason, Rejection, Schema, same_parse_result};
+use scrim::engine::event::{
+    Event, LineParser, LineShape, RejectReason, Rejection, Schema, same_parse_result,
+};
 use scrim::engine::time::{MAX_EVENT_TIME, Millis};
 
 const ZONES: [&str; 5] = [
@@ -879,6 +881,7 @@ fn generated_hostile_lines_are_classified_without_panics() {
     let mut failures: Vec<String> = Vec::new();
     let mut outcomes: BTreeMap<(&str, &str), usize> = BTreeMap::new();
     let mut n_oracle_checked = 0usize;
+    let mut shape = LineShape::new();
     for line_idx in 0..n_lines {
         let (family, line, expect) = hostile_line(&mut rng);
         let parsed = catch_unwind(AssertUnwindSafe(|| parser.parse(&line, &test_hash)));
@@ -887,8 +890,25 @@ fn generated_hostile_lines_are_classified_without_panics() {
             failures.push(format!("#{line_idx} {family}: panicked on {:?}", shown()));
             continue;
         };
+        // The shape path, with one shape carried over all lines as a reader does (so it
+        // learns from the valid ones), must agree too.
+        let shaped = catch_unwind(AssertUnwindSafe(|| {
+            parser.parse_with_shape(&line, &test_hash, &mut shape)
+        }));
+        let Ok(shaped) = shaped else {
+            failures.push(format!(
+                "#{line_idx} {family}: shape path panicked on {:?}",
+                shown()
+            ));
+            shape = LineShape::new();
+            continue;
+        };
         // The fast path (inside `parse`) must give exactly serde_json's verdict.
         match catch_unwind(AssertUnwindSafe(|| parser.parse_serde(&line, &test_hash))) {
+            Ok(reference) if !same_parse_result(&shaped, &reference) => failures.push(format!(
+                "#{line_idx} {family}: parse_with_shape {shaped:?} but parse_serde {reference:?} for {:?}",
+                shown()
+            )),
             Ok(reference) if same_parse_result(&parsed, &reference) => {}
             Ok(reference) => failures.push(format!(
                 "#{line_idx} {family}: parse {parsed:?} but parse_serde {reference:?} for {:?}",

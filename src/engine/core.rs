@@ -23,7 +23,7 @@ use crate::config::Config;
 use crate::engine::bound::Bounder;
 use crate::engine::contribution::{Contribution, Contributor};
 use crate::engine::dd::Dd;
-use crate::engine::event::{Event, LineParser, RejectReason, Rejection, Schema};
+use crate::engine::event::{Event, LineParser, LineShape, RejectReason, Rejection, Schema};
 use crate::engine::ledger::{BudgetError, EpochCharge, Ledger};
 use crate::engine::linear;
 use crate::engine::mechanism::{
@@ -168,6 +168,8 @@ pub struct Engine {
     plan: Plan,
     /// Shared with [`LineDecoder`]s handed to parse workers; never mutated after `new`.
     parser: Arc<LineParser>,
+    /// The layout of the lines [`Engine::handle_line`] has been reading (speed only).
+    shape: LineShape,
     key: NoiseKey,
     /// `key`'s hashers for unit ids and bounding priorities, derived once.
     hashers: EventHashers,
@@ -259,6 +261,7 @@ impl Engine {
                 carry.first_epoch,
             ),
             parser: Arc::new(parser),
+            shape: LineShape::new(),
             hashers: EventHashers::new(&key),
             key,
             opts,
@@ -339,7 +342,7 @@ impl Engine {
 
     /// Parses and handles one input line (without its newline).
     pub fn handle_line(&mut self, line: &[u8]) {
-        let parsed = decode_line(&self.parser, &self.hashers, line);
+        let parsed = decode_line(&self.parser, &self.hashers, line, &mut self.shape);
         self.handle_parsed(parsed);
     }
 
@@ -757,7 +760,14 @@ impl Prepared {
 impl LineDecoder {
     /// Parses one line (without its newline) exactly as [`Engine::handle_line`] does.
     pub fn decode(&self, line: &[u8]) -> Result<Event, Rejection> {
-        decode_line(&self.parser, &self.hashers, line)
+        self.decode_with(line, &mut LineShape::new())
+    }
+
+    /// [`LineDecoder::decode`] for a caller that reads many lines: `shape` carries the
+    /// layout of the lines seen so far from one call to the next (see [`LineShape`]; the
+    /// result does not depend on it).
+    pub fn decode_with(&self, line: &[u8], shape: &mut LineShape) -> Result<Event, Rejection> {
+        decode_line(&self.parser, &self.hashers, line, shape)
     }
 
     /// [`LineDecoder::decode`] plus, for an event, its bounding priority (when it has a
@@ -765,7 +775,13 @@ impl LineDecoder {
     /// and the key, so parse workers compute them and the engine thread only admits the
     /// event. Use the result with the engine that made this decoder.
     pub fn prepare(&self, line: &[u8]) -> Prepared {
-        let outcome = self.decode(line).map(|ev| PreparedEvent {
+        self.prepare_with(line, &mut LineShape::new())
+    }
+
+    /// [`LineDecoder::prepare`] with a [`LineShape`] carried between calls (see
+    /// [`LineDecoder::decode_with`]).
+    pub fn prepare_with(&self, line: &[u8], shape: &mut LineShape) -> Prepared {
+        let outcome = self.decode_with(line, shape).map(|ev| PreparedEvent {
             time: ev.time,
             keyed: ev.unit.map(|unit| (unit, priority_input(unit, &ev))),
             contribution: self.contributor.contribution(&ev),
@@ -804,8 +820,9 @@ fn decode_line(
     parser: &LineParser,
     hashers: &EventHashers,
     line: &[u8],
+    shape: &mut LineShape,
 ) -> Result<Event, Rejection> {
-    parser.parse(line, &|raw: &[u8]| hashers.unit.hash(raw))
+    parser.parse_with_shape(line, &|raw: &[u8]| hashers.unit.hash(raw), shape)
 }
 
 /// What the bounder keeps of an event: its contribution, and the bytes its bounding

@@ -18,6 +18,13 @@
 //!    more than 19 digits or 9 exponent digits, a float that overflows `f64`) makes the fast
 //!    path give up without a verdict, and step 6 reads the line from scratch. So the fast
 //!    path never decides a syntax rejection: it answers only for lines that are well-formed.
+//!    Before it, a reader that carries a [`LineShape`] ([`LineParser::parse_with_shape`],
+//!    what the engine and the parse workers use) tries the **shape path**: the gaps between
+//!    the values (whitespace, braces, commas, keys, colons) of the last line the fast path
+//!    accepted are compared byte for byte, so the keys are neither scanned nor looked up,
+//!    and the values are read by the fast path's own readers. A line that differs anywhere
+//!    outside its values, or has any faulty field, goes on to the fast path as if there
+//!    were no shape, so the shape path only ever accepts, and only what the fast path would.
 //! 6. The **serde path** ([`LineParser::parse_serde`], the reference): one pass of serde_json
 //!    over the text with a visitor that looks at every top-level key once: schema fields are
 //!    interpreted on the spot (strings are borrowed, never copied), every other key is
@@ -691,6 +698,115 @@ impl LineParser {
         Some(result)
     }
 
+    /// [`LineParser::parse`] for a reader that feeds many lines of one layout: `shape`
+    /// remembers the layout of the lines this reader has been seeing, and a line laid out
+    /// the same way is read by the shape path (step 5 of the module documentation) without
+    /// looking up its keys. The result is the same as `parse(line, unit_hash)` for any
+    /// `shape` (see [`LineShape`]); only the speed depends on it.
+    pub fn parse_with_shape(
+        &self,
+        line: &[u8],
+        unit_hash: &dyn Fn(&[u8]) -> u64,
+        shape: &mut LineShape,
+    ) -> Result<Event, Rejection> {
+        let text = self.object_text(line)?;
+        if shape.is_learned() {
+            if let Some(event) = self.parse_shape(text, shape, unit_hash) {
+                shape.misses = 0;
+                return Ok(event);
+            }
+            shape.misses = shape.misses.saturating_add(1);
+        }
+        let Some(result) = self.parse_fast(text, unit_hash) else {
+            return self.parse_object_serde(text, unit_hash);
+        };
+        if result.is_ok() && (!shape.is_learned() || shape.misses >= RELEARN_AFTER_MISSES) {
+            shape.learn(self, text);
+        }
+        result
+    }
+
+    /// Step 5a: the line read along `shape`, or `None` when it does not follow it exactly
+    /// or any field has a fault (the other paths then decide, from scratch).
+    ///
+    /// Why the event is the one [`LineParser::parse_fast`] would return: the shape was
+    /// learned from a line the fast path accepted, so its gaps hold exactly the JSON
+    /// whitespace, `{`, `,`, keys (without escapes) and `:` that the fast path's scanner
+    /// read around the values of that line, each key a distinct schema field or a key
+    /// outside the schema, and every schema field appears. A line whose bytes outside its
+    /// values equal those gaps, with each value read by the same [`FastLine`] reader the
+    /// fast path uses, therefore presents the same keys in the same order; its schema
+    /// values go through the same [`ValueSeed::interpret`], its other values are only
+    /// skipped as the fast path skips them, and no field repeats, so `LineScan::entry`
+    /// would fill every slot with the same values and `LineScan::finish` would build the
+    /// same event. The unit id is recorded and hashed only once the whole line has
+    /// matched, as on the fast path.
+    fn parse_shape(
+        &self,
+        text: &str,
+        shape: &LineShape,
+        unit_hash: &dyn Fn(&[u8]) -> u64,
+    ) -> Option<Event> {
+        let recorded: RefCell<smallvec::SmallVec<[u8; MAX_UNIT_ID_BYTES]>> =
+            RefCell::new(smallvec::SmallVec::new());
+        let record = |canonical: &[u8]| {
+            let mut buf = recorded.borrow_mut();
+            buf.clear();
+            buf.extend_from_slice(canonical);
+            0
+        };
+        let bytes = text.as_bytes();
+        let mut line = FastLine { text, pos: 0 };
+        let mut time = None;
+        let mut has_unit = false;
+        let mut categories: Categories =
+            smallvec::smallvec![CATEGORY_UNSEEN; self.schema.categories.len()];
+        let mut numbers: Numbers = smallvec::smallvec![f64::NAN; self.schema.numbers.len()];
+        let mut gap_start = 0;
+        for &(gap_end, slot) in &shape.fields {
+            let gap = &shape.gaps[gap_start..gap_end];
+            gap_start = gap_end;
+            if !same_bytes(bytes.get(line.pos..line.pos + gap.len())?, gap) {
+                return None;
+            }
+            line.pos += gap.len();
+            let Some(slot) = slot else {
+                line.skip().ok()?;
+                continue;
+            };
+            let seed = ValueSeed {
+                parser: self,
+                unit_hash: &record,
+                slot,
+            };
+            match (slot, line.interpret(seed).ok()?.ok()?) {
+                (Slot::Time, FieldValue::Time(t)) => time = Some(t),
+                (Slot::Unit, FieldValue::Unit(_)) => has_unit = true,
+                (Slot::Category(i), FieldValue::Category(c)) => *categories.get_mut(i)? = c,
+                (Slot::Number(i), FieldValue::Number(x)) => *numbers.get_mut(i)? = x,
+                _ => return None,
+            }
+        }
+        if !same_bytes(bytes.get(line.pos..)?, &shape.gaps[gap_start..]) {
+            return None;
+        }
+        // Every slot is filled when the shape came from an accepted line; checked anyway,
+        // as `LineScan::finish` would.
+        if has_unit != self.schema.unit_field.is_some()
+            || categories.contains(&CATEGORY_UNSEEN)
+            || numbers.iter().any(|x| x.is_nan())
+        {
+            return None;
+        }
+        let unit = has_unit.then(|| unit_hash(&recorded.borrow()));
+        Some(Event {
+            time: time?,
+            unit,
+            categories,
+            numbers,
+        })
+    }
+
     /// Step 6: the serde path on a line that passed steps 1 to 4.
     fn parse_object_serde(
         &self,
@@ -857,6 +973,107 @@ fn is_json_number(token: &[u8]) -> bool {
         rest = &exp[n..];
     }
     rest.is_empty()
+}
+
+/// Consecutive lines that do not follow a learned [`LineShape`] after which the next line
+/// the fast path accepts replaces it (a feed whose producer changed its layout).
+const RELEARN_AFTER_MISSES: u32 = 16;
+
+/// The layout of the lines one reader has been seeing, for
+/// [`LineParser::parse_with_shape`]: the bytes of a line outside its values (its *gaps*:
+/// whitespace, braces, commas, keys and colons) and the schema slot of each value. A feed
+/// written by one producer lays out every line the same way, so matching the gaps byte for
+/// byte replaces reading each key and looking it up (issue 9).
+///
+/// Learned from the first line the fast path accepts, and again when
+/// 16 lines in a row (`RELEARN_AFTER_MISSES`) have not followed it. It holds no values, no
+/// unit ids and nothing from rejected lines: only key names and separators, and its `Debug`
+/// output shows neither (a key outside the schema is still line content). Results never
+/// depend on it, only the speed: a line that does not follow it exactly is read as if there
+/// were none.
+#[derive(Clone, Default)]
+pub struct LineShape {
+    /// Every gap, concatenated: before the first value, between values, after the last.
+    gaps: Vec<u8>,
+    /// Per value in line order: the end of the gap before it in `gaps`, and its slot
+    /// (`None` for a key outside the schema). The final gap runs from the last end to the
+    /// end of `gaps`.
+    fields: Vec<(usize, Option<Slot>)>,
+    /// Lines since the last that followed the shape.
+    misses: u32,
+}
+
+impl fmt::Debug for LineShape {
+    fn fmt(&self, f: &mut fmt::Formatter<'_>) -> fmt::Result {
+        f.debug_struct("LineShape")
+            .field("fields", &self.fields.len())
+            .field("gap_bytes", &self.gaps.len())
+            .field("misses", &self.misses)
+            .finish()
+    }
+}
+
+impl LineShape {
+    /// A shape that has learned nothing yet.
+    pub fn new() -> LineShape {
+        LineShape::default()
+    }
+
+    fn is_learned(&self) -> bool {
+        !self.fields.is_empty()
+    }
+
+    /// Learns the layout of `text`, a line the fast path accepted. The walk repeats the fast
+    /// path's scanner ([`FastLine::object`]), recording where values start and end; if it
+    /// fails (it cannot on an accepted line) the shape is left as it was.
+    fn learn(&mut self, parser: &LineParser, text: &str) {
+        let mut line = FastLine { text, pos: 0 };
+        let mut fields = Vec::new();
+        let mut gaps = Vec::new();
+        let mut gap_start = 0;
+        let walked = (|| -> Result<(), GiveUp> {
+            line.skip_whitespace();
+            line.eat(b'{')?;
+            loop {
+                line.skip_whitespace();
+                let key = line.string()?;
+                line.skip_whitespace();
+                line.eat(b':')?;
+                line.skip_whitespace();
+                gaps.extend_from_slice(&text.as_bytes()[gap_start..line.pos]);
+                fields.push((gaps.len(), parser.slot_of_key(key)));
+                line.skip()?;
+                gap_start = line.pos;
+                line.skip_whitespace();
+                match line.peek() {
+                    Some(b',') => line.pos += 1,
+                    Some(b'}') => {
+                        line.pos += 1;
+                        break;
+                    }
+                    _ => return Err(GiveUp),
+                }
+            }
+            line.skip_whitespace();
+            if line.pos == text.len() {
+                Ok(())
+            } else {
+                Err(GiveUp)
+            }
+        })();
+        let repeats = fields.iter().enumerate().any(|(i, &(_, slot))| {
+            slot.is_some() && fields[..i].iter().any(|&(_, earlier)| earlier == slot)
+        });
+        if walked.is_err() || repeats {
+            return;
+        }
+        gaps.extend_from_slice(&text.as_bytes()[gap_start..]);
+        *self = LineShape {
+            gaps,
+            fields,
+            misses: 0,
+        };
+    }
 }
 
 /// The fast path met something outside its subset of JSON; the serde path decides.
@@ -1773,10 +1990,19 @@ mod tests {
             ("-9223372036854775808", i64::MIN.to_string()),
             (long.as_str(), "é".repeat(128)),
         ] {
-            seen.borrow_mut().clear();
-            let event = parser.parse(with_field("card", Some(raw)).as_bytes(), &recorder);
-            assert_eq!(event.map(|e| e.unit), Ok(Some(7)), "card = {raw}");
-            assert_eq!(*seen.borrow(), vec![canonical.into_bytes()], "card = {raw}");
+            // Both the fast path and the shape path (the line has the scenario's layout).
+            let line = with_field("card", Some(raw));
+            let mut shape = scenario_shape(&parser);
+            for shaped in [false, true] {
+                seen.borrow_mut().clear();
+                let event = if shaped {
+                    parser.parse_with_shape(line.as_bytes(), &recorder, &mut shape)
+                } else {
+                    parser.parse(line.as_bytes(), &recorder)
+                };
+                assert_eq!(event.map(|e| e.unit), Ok(Some(7)), "card = {raw}");
+                assert_eq!(*seen.borrow(), vec![canonical.as_bytes()], "card = {raw}");
+            }
         }
         // "42" and 42 are the same unit.
         let as_text = parse(with_field("card", Some(r#""42""#)).as_bytes()).map(|e| e.unit);
@@ -1798,16 +2024,104 @@ mod tests {
             "[]",
             "{}",
         ] {
-            seen.borrow_mut().clear();
-            let result = parser.parse(with_field("card", Some(raw)).as_bytes(), &recorder);
-            let rejection = result.expect_err(raw);
-            assert_eq!(rejection.reason, RejectReason::BadUnitId, "card = {raw}");
-            assert_eq!(rejection.field.as_deref(), Some("card"));
-            assert!(
-                seen.borrow().is_empty(),
-                "a bad unit id must not reach the hash: {raw}"
-            );
+            let line = with_field("card", Some(raw));
+            let mut shape = scenario_shape(&parser);
+            for shaped in [false, true] {
+                seen.borrow_mut().clear();
+                let result = if shaped {
+                    parser.parse_with_shape(line.as_bytes(), &recorder, &mut shape)
+                } else {
+                    parser.parse(line.as_bytes(), &recorder)
+                };
+                let rejection = result.expect_err(raw);
+                assert_eq!(rejection.reason, RejectReason::BadUnitId, "card = {raw}");
+                assert_eq!(rejection.field.as_deref(), Some("card"));
+                assert!(
+                    seen.borrow().is_empty(),
+                    "a bad unit id must not reach the hash: {raw}"
+                );
+            }
         }
+    }
+
+    /// The slots of a shape's values in line order.
+    fn shape_slots(shape: &LineShape) -> Vec<Option<Slot>> {
+        shape.fields.iter().map(|&(_, slot)| slot).collect()
+    }
+
+    #[test]
+    fn line_shape_is_learned_from_accepted_lines_and_relearned_after_misses() {
+        let parser = demo_parser();
+        let hash = &test_hash;
+        let mut shape = LineShape::new();
+        // Rejected lines teach nothing, whatever their layout.
+        for rejected in [
+            with_field("zone", Some(r#""moon""#)),
+            with_field("ts", None),
+            r#"{"ts":"#.to_string(),
+        ] {
+            assert!(
+                parser
+                    .parse_with_shape(rejected.as_bytes(), hash, &mut shape)
+                    .is_err()
+            );
+            assert!(!shape.is_learned(), "{rejected}");
+        }
+        // Nor do lines that only the serde path accepts (an array).
+        let nested = SCENARIO_LINE.replace(r#""transfers":0"#, r#""transfers":0,"x":[1]"#);
+        parser
+            .parse_with_shape(nested.as_bytes(), hash, &mut shape)
+            .expect("valid");
+        assert!(!shape.is_learned());
+        // The first line the fast path accepts does; its gaps are the line without its
+        // values.
+        let first = r#"{ "ts": "2026-03-02T08:14:07Z","x":true,"card":"c","mode":"tram","zone":"harbour","fare_cents":1,"trip_km":2,"trip_minutes":3,"transfers":0 } "#;
+        parser
+            .parse_with_shape(first.as_bytes(), hash, &mut shape)
+            .expect("valid");
+        assert_eq!(
+            String::from_utf8_lossy(&shape.gaps),
+            r#"{ "ts": ,"x":,"card":,"mode":,"zone":,"fare_cents":,"trip_km":,"trip_minutes":,"transfers": } "#
+        );
+        let learned = shape_slots(&shape);
+        assert_eq!(learned[..3], [Some(Slot::Time), None, Some(Slot::Unit)]);
+        // A line of that layout is read along the shape, and counts as a hit.
+        let next = first.replace(r#""c""#, r#""d""#).replace("true", "null");
+        let event = parser
+            .parse_shape(&next, &shape, hash)
+            .expect("follows the shape");
+        assert_eq!(event.unit, Some(test_hash(b"d")));
+        // A line with a fault does not: the fast path gives the same rejection.
+        let fault = first.replace("harbour", "moon");
+        assert!(parser.parse_shape(&fault, &shape, hash).is_none());
+        // Lines of another layout are misses; the 16th accepted one in a row replaces the
+        // shape.
+        for i in 1..=RELEARN_AFTER_MISSES {
+            let other = SCENARIO_LINE.replace("c-7f3a91", &format!("c-{i}"));
+            let event = parser.parse_with_shape(other.as_bytes(), hash, &mut shape);
+            assert_eq!(
+                event.map(|e| e.unit),
+                Ok(Some(test_hash(format!("c-{i}").as_bytes())))
+            );
+            let relearned = i == RELEARN_AFTER_MISSES;
+            assert_eq!(shape_slots(&shape) == learned, !relearned, "line {i}");
+            assert_eq!(shape.misses, if relearned { 0 } else { i });
+        }
+        assert_eq!(
+            String::from_utf8_lossy(&shape.gaps),
+            r#"{"ts":,"card":,"mode":,"zone":,"fare_cents":,"trip_km":,"trip_minutes":,"transfers":}"#
+        );
+        // A hit resets the count of misses.
+        parser
+            .parse_with_shape(first.as_bytes(), hash, &mut shape)
+            .expect("valid");
+        assert_eq!(shape.misses, 1);
+        parser
+            .parse_with_shape(SCENARIO_LINE.as_bytes(), hash, &mut shape)
+            .expect("valid");
+        assert_eq!(shape.misses, 0);
+        // A shape never holds values: only separators and key names.
+        assert!(!String::from_utf8_lossy(&shape.gaps).contains("c-"));
     }
 
     #[test]
@@ -2642,17 +2956,72 @@ mod tests {
         }
     }
 
-    /// Both parse paths on `line`, compared bit for bit (the proptests below).
+    /// Every parse path on `line`, compared bit for bit with the serde path (the proptests
+    /// below): the fast path, and the shape path with no shape, with the shape of
+    /// [`SCENARIO_LINE`], and with the shape of `line` itself (learned by a first parse).
     fn paths_agree(line: &[u8]) -> Result<(), TestCaseError> {
         let parser = demo_parser();
-        let fast = parser.parse(line, &test_hash);
         let reference = parser.parse_serde(line, &test_hash);
+        let fast = parser.parse(line, &test_hash);
         prop_assert!(
             same_parse_result(&fast, &reference),
             "{:?}: parse {fast:?}, parse_serde {reference:?}",
             String::from_utf8_lossy(line)
         );
+        // The last two share one shape: the first of them learns `line` if it is accepted.
+        let mut shapes = [LineShape::new(), scenario_shape(&parser), LineShape::new()];
+        for i in [0, 1, 2, 2] {
+            let shape = &mut shapes[i];
+            let shaped = parser.parse_with_shape(line, &test_hash, shape);
+            prop_assert!(
+                same_parse_result(&shaped, &reference),
+                "{:?}: parse_with_shape {shaped:?}, parse_serde {reference:?}, shape {shape:?}",
+                String::from_utf8_lossy(line)
+            );
+        }
         Ok(())
+    }
+
+    /// The shape learned from [`SCENARIO_LINE`].
+    fn scenario_shape(parser: &LineParser) -> LineShape {
+        let mut shape = LineShape::new();
+        parser
+            .parse_with_shape(SCENARIO_LINE.as_bytes(), &test_hash, &mut shape)
+            .expect("the scenario line is valid");
+        assert!(shape.is_learned());
+        shape
+    }
+
+    /// Two lines with the same keys and whitespace (the same gaps) and values drawn
+    /// independently, the second with a few random byte edits.
+    fn same_layout_pair() -> impl Strategy<Value = (Vec<u8>, Vec<u8>)> {
+        let entry = (
+            whitespace_text(),
+            key_text(),
+            whitespace_text(),
+            value_text(),
+            value_text(),
+        );
+        let edit = (any::<proptest::sample::Index>(), 0u8..3, any::<u8>());
+        (
+            proptest::collection::vec(entry, 1..12),
+            whitespace_text(),
+            prop_oneof![3 => Just(Vec::new()), 1 => proptest::collection::vec(edit, 1..3)],
+        )
+            .prop_map(|(entries, tail, edits)| {
+                let line = |second: bool| {
+                    let body: Vec<String> = entries
+                        .iter()
+                        .map(|(w1, k, w2, a, b)| {
+                            format!("{w1}{k}{w2}:{w2}{}{w1}", if second { b } else { a })
+                        })
+                        .collect();
+                    format!("{{{}}}{tail}", body.join(",")).into_bytes()
+                };
+                let mut second = line(true);
+                apply_edits(&mut second, &edits);
+                (line(false), second)
+            })
     }
 
     proptest! {
@@ -2682,6 +3051,26 @@ mod tests {
             let mut line = with_field(field, Some(&value)).into_bytes();
             apply_edits(&mut line, &edits);
             paths_agree(&line)?;
+        }
+
+        /// The shape path on a line laid out like the line its shape was learned from (the
+        /// case it exists for), values and edits included, equals the serde path.
+        #[test]
+        fn shape_path_agrees_on_lines_of_a_learned_layout(
+            (first, second) in same_layout_pair(),
+        ) {
+            let parser = demo_parser();
+            let mut shape = LineShape::new();
+            let learned = parser.parse_with_shape(&first, &test_hash, &mut shape);
+            prop_assert!(same_parse_result(&learned, &parser.parse_serde(&first, &test_hash)));
+            let shaped = parser.parse_with_shape(&second, &test_hash, &mut shape);
+            let reference = parser.parse_serde(&second, &test_hash);
+            prop_assert!(
+                same_parse_result(&shaped, &reference),
+                "{:?} after {:?}: parse_with_shape {shaped:?}, parse_serde {reference:?}",
+                String::from_utf8_lossy(&second),
+                String::from_utf8_lossy(&first)
+            );
         }
     }
 

@@ -28,7 +28,7 @@ use std::io::{self, Read};
 use std::sync::{Condvar, Mutex, MutexGuard, PoisonError};
 
 use crate::engine::core::{LineDecoder, Prepared};
-use crate::engine::event::{SWAR_ONES, swar_position, swar_zero_bytes};
+use crate::engine::event::{LineShape, SWAR_ONES, swar_position, swar_zero_bytes};
 
 /// Target size of one chunk of input: about 450 demo lines, a millisecond of parsing. The
 /// few lock operations per chunk cost nothing next to that, and a chunk held by a thread
@@ -149,13 +149,14 @@ impl<R: Read> ChunkReader<R> {
     }
 }
 
-/// Prepares every line of `job.bytes` into `job.verdicts` ([`split_lines`]).
-fn decode_job(decoder: &LineDecoder, job: &mut Job) {
+/// Prepares every line of `job.bytes` into `job.verdicts` ([`split_lines`]), with the
+/// calling thread's `shape` (speed only: the verdicts do not depend on it).
+fn decode_job(decoder: &LineDecoder, job: &mut Job, shape: &mut LineShape) {
     let Job {
         bytes, verdicts, ..
     } = job;
     split_lines(bytes, |line| {
-        verdicts.push(decoder.prepare(line));
+        verdicts.push(decoder.prepare_with(line, shape));
         Ok(())
     })
     .unwrap_or(());
@@ -218,6 +219,7 @@ fn find_newline(bytes: &[u8]) -> Option<usize> {
 
 fn worker(shared: &Shared, decoder: &LineDecoder) {
     let _loss = ReportLoss(shared);
+    let mut shape = LineShape::new();
     loop {
         let mut job = {
             let mut q = shared.lock();
@@ -231,7 +233,7 @@ fn worker(shared: &Shared, decoder: &LineDecoder) {
                 q = shared.work.wait(q).unwrap_or_else(PoisonError::into_inner);
             }
         };
-        decode_job(decoder, &mut job);
+        decode_job(decoder, &mut job, &mut shape);
         shared.lock().done.insert(job.seq, job);
         shared.progress.notify_one();
     }
@@ -275,6 +277,7 @@ pub fn decode_in_order<R: Read>(
         let mut spare: Vec<(Vec<u8>, Vec<Verdict>)> = Vec::new();
         let (mut next_read, mut next_consume, mut n_lines) = (0u64, 0u64, 0u64);
         let mut input_done = false;
+        let mut shape = LineShape::new();
         loop {
             // Keep the pipeline full: read ahead up to the in-flight limit.
             while !input_done && next_read - next_consume < max_in_flight {
@@ -305,7 +308,7 @@ pub fn decode_in_order<R: Read>(
                     }
                     if let Some(mut job) = q.todo.pop_front() {
                         drop(q);
-                        decode_job(decoder, &mut job);
+                        decode_job(decoder, &mut job, &mut shape);
                         if job.seq == next_consume {
                             break job;
                         }
