@@ -759,6 +759,7 @@ impl LineParser {
         let mut line = FastLine { text, pos: 0 };
         let mut time = None;
         let mut has_unit = false;
+        let mut unit_text: Option<&str> = None;
         let mut categories: Categories =
             smallvec::smallvec![CATEGORY_UNSEEN; self.schema.categories.len()];
         let mut numbers: Numbers = smallvec::smallvec![f64::NAN; self.schema.numbers.len()];
@@ -774,17 +775,53 @@ impl LineParser {
                 line.skip().ok()?;
                 continue;
             };
-            let seed = ValueSeed {
-                parser: self,
-                unit_hash: &record,
-                slot,
+            // Numbers and categories are read by the reader their only acceptable type
+            // takes, as `FastLine::interpret` would after its dispatch on the first byte;
+            // any other first byte is a WrongType fault there, and a `None` here.
+            match slot {
+                Slot::Number(i) => {
+                    if !matches!(line.peek(), Some(b'-' | b'0'..=b'9')) {
+                        return None;
+                    }
+                    *numbers.get_mut(i)? =
+                        number_value(line.number().ok()?.to_json().ok()?).ok()?;
+                    continue;
+                }
+                Slot::Category(i) => {
+                    if line.peek() != Some(b'"') {
+                        return None;
+                    }
+                    *categories.get_mut(i)? = self.category_index(i, line.string().ok()?)?;
+                    continue;
+                }
+                Slot::Time | Slot::Unit => {}
+            }
+            // A time or a unit id may be a string or an integer; a string goes straight to
+            // the interpretation `FastLine::interpret` would hand it to. A unit id string is
+            // its own canonical text, hashed from the line below instead of from a copy.
+            let value = if line.peek() == Some(b'"') {
+                let s = line.string().ok()?;
+                if slot == Slot::Unit {
+                    unit_text = Some(s);
+                }
+                let seed = ValueSeed {
+                    parser: self,
+                    unit_hash: &|_| 0,
+                    slot,
+                };
+                seed.interpret(Json::Str(s))
+            } else {
+                let seed = ValueSeed {
+                    parser: self,
+                    unit_hash: &record,
+                    slot,
+                };
+                line.interpret(seed).ok()?
             };
-            match (slot, line.interpret(seed).ok()?.ok()?) {
-                (Slot::Time, FieldValue::Time(t)) => time = Some(t),
-                (Slot::Unit, FieldValue::Unit(_)) => has_unit = true,
-                (Slot::Category(i), FieldValue::Category(c)) => *categories.get_mut(i)? = c,
-                (Slot::Number(i), FieldValue::Number(x)) => *numbers.get_mut(i)? = x,
-                _ => return None,
+            match value.ok()? {
+                FieldValue::Time(t) => time = Some(t),
+                FieldValue::Unit(_) => has_unit = true,
+                FieldValue::Category(_) | FieldValue::Number(_) => return None,
             }
         }
         if !same_bytes(bytes.get(line.pos..)?, &shape.gaps[gap_start..]) {
@@ -798,7 +835,10 @@ impl LineParser {
         {
             return None;
         }
-        let unit = has_unit.then(|| unit_hash(&recorded.borrow()));
+        let unit = has_unit.then(|| match unit_text {
+            Some(text) => unit_hash(text.as_bytes()),
+            None => unit_hash(&recorded.borrow()),
+        });
         Some(Event {
             time: time?,
             unit,
