@@ -16,6 +16,7 @@ use rand::rngs::ChaCha20Rng;
 
 use scrim::config::Config;
 use scrim::demo::{DemoFeed, FeedSpec};
+use scrim::engine::event::LineShape;
 use scrim::engine::mechanism::{self, LeafRange, MechanismKind, NodeAddr, NodeNoise};
 use scrim::engine::noise::{self, NoiseId, NoiseKey};
 use scrim::engine::{Engine, EngineOptions, linear};
@@ -146,18 +147,30 @@ fn parse(c: &mut Criterion) {
     .collect();
     g.throughput(Throughput::Elements(1));
     let mut i = 0usize;
+    // What replay does: the keyed hash, with the layout carried from line to line.
+    let mut shape = LineShape::new();
     g.bench_function("parse/demo_line/keyed_hash", |b| {
         b.iter(|| {
             i = (i + 1) % lines.len();
-            decoder.decode(black_box(&lines[i]))
+            decoder.decode_with(black_box(&lines[i]), &mut shape)
         })
     });
-    // With a trivial hash: `parse` (the fast path with its serde_json fallback, what replay
-    // uses) and `parse_serde` (serde_json alone, the floor of examples/parse_floor.rs).
+    // With a trivial hash: `parse_with_shape` (what replay uses), `parse` (the fast path with
+    // its serde_json fallback, no shape) and `parse_serde` (serde_json alone, the floor of
+    // examples/parse_floor.rs).
     let trivial = |raw: &[u8]| {
         raw.iter()
             .fold(0u64, |h, b| h.rotate_left(8) ^ u64::from(*b))
     };
+    let mut shape = LineShape::new();
+    g.bench_function("parse_with_shape/demo_line/trivial_hash", |b| {
+        b.iter(|| {
+            i = (i + 1) % lines.len();
+            decoder
+                .parser()
+                .parse_with_shape(black_box(&lines[i]), &trivial, &mut shape)
+        })
+    });
     g.bench_function("parse/demo_line/trivial_hash", |b| {
         b.iter(|| {
             i = (i + 1) % lines.len();
