@@ -195,6 +195,10 @@ pub struct Engine {
     halted: Option<BudgetError>,
     counters: Counters,
     outbox: VecDeque<Release>,
+    /// Per statistic, each group's keys as the records' `group` field, built at the first
+    /// close and shared by every record of the group since (issue 9: building and dropping
+    /// them at every close was a sixth of closing 100,000 groups).
+    group_keys: Vec<Vec<Arc<BTreeMap<String, String>>>>,
     next_seq: u64,
     guarantee: Arc<Guarantee>,
 }
@@ -279,6 +283,7 @@ impl Engine {
             halted: None,
             counters: Counters::default(),
             outbox: VecDeque::new(),
+            group_keys: Vec::new(),
             next_seq: carry.next_seq,
             guarantee: Arc::new(guarantee),
             plan,
@@ -635,6 +640,26 @@ impl Engine {
                 .map(|s| s.groups.len() * s.scopes.len())
                 .sum(),
         );
+        if self.group_keys.is_empty() {
+            self.group_keys = self
+                .plan
+                .stats
+                .iter()
+                .map(|s| {
+                    (0..s.groups.len())
+                        .map(|g| {
+                            Arc::new(
+                                s.groups
+                                    .keys_of(g)
+                                    .into_iter()
+                                    .map(|(f, k)| (f.to_string(), k.to_string()))
+                                    .collect(),
+                            )
+                        })
+                        .collect()
+                })
+                .collect();
+        }
         let origin = self.origin.unwrap_or(w);
         let epoch_start =
             origin + ((epoch - self.epoch_base) * u64::from(self.plan.epoch_windows)) as i64;
@@ -658,15 +683,7 @@ impl Engine {
                     )
                 })
                 .collect();
-            for g in 0..s.groups.len() {
-                // The group's keys as a record field, built once for all its scopes.
-                let group: Arc<BTreeMap<String, String>> = Arc::new(
-                    s.groups
-                        .keys_of(g)
-                        .into_iter()
-                        .map(|(f, k)| (f.to_string(), k.to_string()))
-                        .collect(),
-                );
+            for (g, group) in self.group_keys[si].iter().enumerate() {
                 for (scope, (range, label, start, end)) in s.scopes.iter().zip(&scopes) {
                     let range = *range;
                     let series = &state.series[si];
