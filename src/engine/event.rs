@@ -726,8 +726,9 @@ impl LineParser {
         result
     }
 
-    /// Step 5a: the line read along `shape`, or `None` when it does not follow it exactly
-    /// or any field has a fault (the other paths then decide, from scratch).
+    /// The shape path (step 5): the line read along `shape`, or `None` when it does not
+    /// follow it exactly or any field has a fault (the other paths then decide, from
+    /// scratch).
     ///
     /// Why the event is the one [`LineParser::parse_fast`] would return: the shape was
     /// learned from a line the fast path accepted, so its gaps hold exactly the JSON
