@@ -680,17 +680,11 @@ impl LineParser {
         text: &str,
         unit_hash: &dyn Fn(&[u8]) -> u64,
     ) -> Option<Result<Event, Rejection>> {
-        let recorded: RefCell<smallvec::SmallVec<[u8; MAX_UNIT_ID_BYTES]>> =
-            RefCell::new(smallvec::SmallVec::new());
-        let record = |canonical: &[u8]| {
-            let mut buf = recorded.borrow_mut();
-            buf.clear();
-            buf.extend_from_slice(canonical);
-            0
-        };
+        let recorded = UnitRecord::default();
+        let record = |canonical: &[u8]| recorded.keep(canonical);
         let mut scan = LineScan::new(self, &record);
         FastLine { text, pos: 0 }.object(&mut scan).ok()?;
-        let unit = scan.unit.map(|_| unit_hash(&recorded.borrow()));
+        let unit = scan.unit.map(|_| recorded.hash(unit_hash));
         let mut result = scan.finish();
         if let Ok(event) = &mut result {
             event.unit = unit;
@@ -748,14 +742,8 @@ impl LineParser {
         shape: &LineShape,
         unit_hash: &dyn Fn(&[u8]) -> u64,
     ) -> Option<Event> {
-        let recorded: RefCell<smallvec::SmallVec<[u8; MAX_UNIT_ID_BYTES]>> =
-            RefCell::new(smallvec::SmallVec::new());
-        let record = |canonical: &[u8]| {
-            let mut buf = recorded.borrow_mut();
-            buf.clear();
-            buf.extend_from_slice(canonical);
-            0
-        };
+        let recorded = UnitRecord::default();
+        let record = |canonical: &[u8]| recorded.keep(canonical);
         let bytes = text.as_bytes();
         let mut line = FastLine { text, pos: 0 };
         let mut time = None;
@@ -838,7 +826,7 @@ impl LineParser {
         }
         let unit = has_unit.then(|| match unit_text {
             Some(text) => unit_hash(text.as_bytes()),
-            None => unit_hash(&recorded.borrow()),
+            None => recorded.hash(unit_hash),
         });
         Some(Event {
             time: time?,
@@ -1014,6 +1002,27 @@ fn is_json_number(token: &[u8]) -> bool {
         rest = &exp[n..];
     }
     rest.is_empty()
+}
+
+/// A line's unit id as canonical text, kept by the fast and shape paths (through a
+/// recording `unit_hash` they hand to the shared per-key logic) until the line is known to
+/// be accepted: only then is the caller's hash called, once.
+#[derive(Default)]
+struct UnitRecord(RefCell<smallvec::SmallVec<[u8; MAX_UNIT_ID_BYTES]>>);
+
+impl UnitRecord {
+    /// Keeps `canonical`; the 0 stands in for the hash until [`UnitRecord::hash`].
+    fn keep(&self, canonical: &[u8]) -> u64 {
+        let mut buf = self.0.borrow_mut();
+        buf.clear();
+        buf.extend_from_slice(canonical);
+        0
+    }
+
+    /// The caller's hash of the kept text.
+    fn hash(&self, unit_hash: &dyn Fn(&[u8]) -> u64) -> u64 {
+        unit_hash(&self.0.borrow())
+    }
 }
 
 /// Consecutive lines that do not follow a learned [`LineShape`] after which the next line
