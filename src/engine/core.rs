@@ -196,8 +196,9 @@ pub struct Engine {
     counters: Counters,
     outbox: VecDeque<Release>,
     /// Per statistic, each group's keys as the records' `group` field, built at the first
-    /// close and shared by every record of the group since (issue 9: building and dropping
-    /// them at every close was a sixth of closing 100,000 groups).
+    /// close and shared by every record of the group since (issue 9: building them was
+    /// about 7% of the instructions of closing 100,000 groups, by callgrind, before the
+    /// frees when the records are dropped).
     group_keys: Vec<Vec<Arc<BTreeMap<String, String>>>>,
     next_seq: u64,
     guarantee: Arc<Guarantee>,
