@@ -24,6 +24,9 @@ use crate::engine::plan::{ComponentPlan, ComponentRole, Plan};
 /// sizes are far below `u32::MAX`: configuration caps keys per field).
 const NOT_PART: u32 = u32::MAX;
 
+/// Coordinates a [`Contribution`] holds inline (see there).
+const INLINE_VALUES: usize = 16;
+
 /// One event's contribution: per statistic its group (or `NOT_PART`), and per component,
 /// in plan order, its grid values (`dim` each, zeros for statistics it is not part of).
 ///
@@ -36,7 +39,7 @@ const NOT_PART: u32 = u32::MAX;
 #[derive(Clone, Debug, PartialEq, Eq)]
 pub struct Contribution {
     groups: SmallVec<[u32; 6]>,
-    narrow: SmallVec<[i64; 16]>,
+    narrow: SmallVec<[i64; INLINE_VALUES]>,
     wide: Option<Box<[i128]>>,
 }
 
@@ -96,7 +99,52 @@ impl Contributor {
     /// The contribution of `ev` (an event parsed with this plan's schema).
     pub fn contribution(&self, ev: &Event) -> Contribution {
         let mut groups = SmallVec::with_capacity(self.stats.len());
-        let mut values: SmallVec<[i128; 16]> = smallvec::smallvec![0i128; self.width];
+        if self.width <= INLINE_VALUES {
+            // The usual case, on the stack: no zero-filled SmallVec and no collect (issue 9:
+            // the two were 3% of replay).
+            let mut values = [0i128; INLINE_VALUES];
+            self.fill(ev, &mut groups, &mut values[..self.width]);
+            let mut narrow = [0i64; INLINE_VALUES];
+            let mut fits = true;
+            for (to, v) in narrow.iter_mut().zip(&values[..self.width]) {
+                match i64::try_from(*v) {
+                    Ok(v) => *to = v,
+                    Err(_) => fits = false,
+                }
+            }
+            return if fits {
+                Contribution {
+                    groups,
+                    narrow: SmallVec::from_buf_and_len(narrow, self.width),
+                    wide: None,
+                }
+            } else {
+                Contribution {
+                    groups,
+                    narrow: SmallVec::new(),
+                    wide: Some(values[..self.width].into()),
+                }
+            };
+        }
+        let mut values = vec![0i128; self.width];
+        self.fill(ev, &mut groups, &mut values);
+        match values.iter().map(|&v| i64::try_from(v).ok()).collect() {
+            Some(narrow) => Contribution {
+                groups,
+                narrow,
+                wide: None,
+            },
+            None => Contribution {
+                groups,
+                narrow: SmallVec::new(),
+                wide: Some(values.into()),
+            },
+        }
+    }
+
+    /// Pushes `ev`'s group in each statistic onto `groups` and adds its values to
+    /// `values` (zeros, `width` long).
+    fn fill(&self, ev: &Event, groups: &mut SmallVec<[u32; 6]>, values: &mut [i128]) {
         for s in &self.stats {
             let group = group_of(&s.fields, ev);
             groups.push(group.unwrap_or(NOT_PART));
@@ -106,20 +154,6 @@ impl Contributor {
             for (c, offset) in &s.components {
                 contribute(c, ev, &mut values[*offset..*offset + c.dim]);
             }
-        }
-        let narrow: Option<SmallVec<[i64; 16]>> =
-            values.iter().map(|&v| i64::try_from(v).ok()).collect();
-        match narrow {
-            Some(narrow) => Contribution {
-                groups,
-                narrow,
-                wide: None,
-            },
-            None => Contribution {
-                groups,
-                narrow: SmallVec::new(),
-                wide: Some(values.into_iter().collect()),
-            },
         }
     }
 

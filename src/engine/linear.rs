@@ -409,14 +409,22 @@ const SPLIT_MAX: f64 = f64::from_bits((1023 + 450) << 52);
 /// Equal to `a.mul_add(b, -p)`, the fused form, up to the sign of a zero.
 #[inline(always)]
 fn two_product_err(a: f64, b: f64, p: f64) -> f64 {
+    two_product_err_of_splits(veltkamp_split(a), veltkamp_split(b), p)
+}
+
+/// Veltkamp's split of `v` into a high part of 26 significant bits and the rest (see
+/// [`two_product_err`]).
+#[inline(always)]
+fn veltkamp_split(v: f64) -> (f64, f64) {
     const SPLITTER: f64 = 134_217_729.0; // 2^27 + 1
-    let split = |v: f64| {
-        let c = SPLITTER * v;
-        let hi = c - (c - v);
-        (hi, v - hi)
-    };
-    let (a_hi, a_lo) = split(a);
-    let (b_hi, b_lo) = split(b);
+    let c = SPLITTER * v;
+    let hi = c - (c - v);
+    (hi, v - hi)
+}
+
+/// [`two_product_err`] from the factors' splits.
+#[inline(always)]
+fn two_product_err_of_splits((a_hi, a_lo): (f64, f64), (b_hi, b_lo): (f64, f64), p: f64) -> f64 {
     a_lo * b_lo - (((p - a_hi * b_hi) - a_lo * b_hi) - a_hi * b_lo)
 }
 
@@ -510,6 +518,28 @@ pub fn accumulate(layout: &Layout, x: &[f64], y: f64, grid_exp: i32, acc: &mut [
     let split_exact = z
         .iter()
         .all(|v| *v == 0.0 || (SPLIT_MIN..=SPLIT_MAX).contains(&v.abs()));
+    if split_exact && z.len() <= 16 {
+        // Each factor's Veltkamp split once, not once per product it is in (issue 9): the
+        // same operations on the same values, so the same integers.
+        let mut parts = [(0.0f64, 0.0f64); 16];
+        for (part, &v) in parts.iter_mut().zip(z.iter()) {
+            *part = veltkamp_split(v);
+        }
+        let mut idx = 0;
+        for (i, &zi) in z.iter().enumerate() {
+            for (j, &zj) in z.iter().enumerate().skip(i) {
+                let p = zi * zj;
+                let err = two_product_err_of_splits(parts[i], parts[j], p);
+                let units = match units_small(p, err, scale) {
+                    Some(units) => i128::from(units),
+                    None => product_units(zi, zj, scale),
+                };
+                acc[idx] = acc[idx].saturating_add(units);
+                idx += 1;
+            }
+        }
+        return;
+    }
     let mut idx = 0;
     for (i, &zi) in z.iter().enumerate() {
         for &zj in &z[i..] {
@@ -557,15 +587,21 @@ pub(crate) fn scratch<'a>(
 #[inline(always)]
 fn product_units_small(a: f64, b: f64, scale: f64, split_exact: bool) -> Option<i64> {
     let p = a * b;
-    let big = p * scale;
-    if big.is_nan() || big.abs() >= TWO_POW_52 {
-        return None;
-    }
     let err = if split_exact {
         two_product_err(a, b, p)
     } else {
         a.mul_add(b, -p)
     };
+    units_small(p, err, scale)
+}
+
+/// The rounding of [`product_units_small`] given p = fl(a·b) and its exact error `err`.
+#[inline(always)]
+fn units_small(p: f64, err: f64, scale: f64) -> Option<i64> {
+    let big = p * scale;
+    if big.is_nan() || big.abs() >= TWO_POW_52 {
+        return None;
+    }
     let int_units = big as i64;
     let frac = (big - int_units as f64) + err * scale;
     let frac_trunc = frac as i64;
