@@ -19,19 +19,21 @@
 //!
 //! # Memory
 //! Unit ids are never stored: the parser hands over a keyed 64-bit hash. The epoch table
-//! holds one `u64 → u32` entry per active unit (the number of windows used). Open windows
+//! holds one `u64 → u32` entry per active unit (the number of windows used), 16 to 32 bytes
+//! per unit (see [`EpochTable`]). Open windows
 //! hold at most about `2k` events per unit, so their size is bounded by the number of
 //! active units, not by the event rate: an open window buffers its events and compacts the
 //! buffer to each unit's `k` smallest priorities whenever it doubles.
 
-use std::collections::{BTreeMap, HashMap};
-use std::hash::{BuildHasherDefault, Hasher};
+use std::collections::BTreeMap;
 
 use crate::engine::event::Event;
 
 /// One buffered event's key; `seq` indexes [`WindowBuffer::events`] and grows with
-/// arrival, so sorting keys lists each unit's events in arrival order.
-#[derive(Clone, Copy, Debug, PartialEq, Eq, PartialOrd, Ord)]
+/// arrival, so sorting keys lists each unit's events in arrival order. `unit` is the
+/// unit's [`mix`]ed id: a bijection of the unit hash, so it groups events exactly as the
+/// hash does, and uniform even when the hashes are not (small test ids).
+#[derive(Clone, Copy, Debug, Default, PartialEq, Eq, PartialOrd, Ord)]
 struct Key {
     unit: u64,
     seq: u32,
@@ -57,6 +59,8 @@ struct WindowBuffer<T> {
     compact_at: usize,
     /// Scratch for one unit's `(priority, seq)` pairs.
     run: Vec<(u64, u32)>,
+    /// Scratch for [`sort_keys`].
+    sorting: SortScratch,
 }
 
 impl<T> WindowBuffer<T> {
@@ -66,6 +70,7 @@ impl<T> WindowBuffer<T> {
             events: Vec::new(),
             compact_at: compact_floor,
             run: Vec::new(),
+            sorting: SortScratch::default(),
         }
     }
 
@@ -75,23 +80,41 @@ impl<T> WindowBuffer<T> {
         self.compact_at = compact_at;
     }
 
+    /// Sorts the keys by `(unit, seq)` (see [`sort_keys`]) and returns the number of
+    /// distinct units.
+    fn sort(&mut self) -> usize {
+        sort_keys(&mut self.keys, &mut self.sorting);
+        usize::from(!self.keys.is_empty())
+            + self
+                .keys
+                .windows(2)
+                .filter(|w| w[0].unit != w[1].unit)
+                .count()
+    }
+
     /// Calls `each(unit, seq, rank)` for every buffered event, unit by unit, with `rank`
     /// the event's position among its unit's events by `(priority, seq)` (0 = smallest
     /// priority; earlier arrivals first among equal priorities) when the unit has more
     /// than `k` events, and its arrival position otherwise (all below `k`, so all survive
     /// whatever the priorities: they are not computed).
+    ///
+    /// The keys must be sorted ([`WindowBuffer::sort`]).
     fn ranked(
         &mut self,
         k: usize,
         priority: &impl Fn(&T) -> u64,
         mut each: impl FnMut(u64, u32, usize),
     ) {
-        self.keys.sort_unstable();
         let keys = &self.keys;
         let mut start = 0;
         while start < keys.len() {
             let unit = keys[start].unit;
-            let end = start + keys[start..].partition_point(|key| key.unit == unit);
+            // A linear scan: groups are short (the loop below visits each key anyway), and
+            // a binary search over the rest of the window cost a cache miss per unit.
+            let end = keys[start + 1..]
+                .iter()
+                .position(|key| key.unit != unit)
+                .map_or(keys.len(), |len| start + 1 + len);
             let group = &keys[start..end];
             if group.len() <= k {
                 for (rank, key) in group.iter().enumerate() {
@@ -116,6 +139,7 @@ impl<T> WindowBuffer<T> {
     /// Drops every event beyond its unit's `k` smallest keys; returns how many it dropped.
     /// The survivors keep their arrival order (and so their tie order).
     fn compact(&mut self, k: usize, compact_floor: usize, priority: &impl Fn(&T) -> u64) -> u64 {
+        self.sort();
         let mut keep = vec![false; self.events.len()];
         self.ranked(k, priority, |_, seq, rank| keep[seq as usize] = rank < k);
         let before = self.events.len();
@@ -138,38 +162,187 @@ impl<T> WindowBuffer<T> {
     }
 }
 
-/// Hasher for the bounder's tables, whose keys are unit hashes: outputs of the engine's
-/// keyed hash (SipHash-2-4, or BLAKE3 in older states), so already uniform 64-bit values
-/// that nobody without the key can steer. Hashing them again with SipHash (the std default,
-/// a defence against chosen keys) buys nothing; one multiplication by an odd constant (a
-/// bijection, so distinct keys stay distinct) with the high half folded down keeps both the
-/// low bits hashbrown indexes with and the top bits it tags with well mixed. The table's
-/// iteration order is therefore deterministic, but nothing depends on it: window
-/// aggregates are exact integer sums.
-#[derive(Clone, Copy, Debug, Default)]
-pub struct UnitKeyHasher(u64);
+/// The bounder's internal id of a unit hash: a bijection of it (multiplication by an odd
+/// constant, then folding the high half down, both invertible), so distinct units keep
+/// distinct ids. Unit hashes are outputs of the engine's keyed hash, already uniform 64-bit
+/// values that nobody without the key can steer; mixing keeps the ids uniform when they are
+/// not (tests use small ids), because the epoch table places a unit by the top bits of its
+/// id and [`sort_keys`] buckets by them.
+#[inline]
+fn mix(unit: u64) -> u64 {
+    // 2^64 / φ, the multiplier of Fibonacci hashing (Knuth, TAOCP vol. 3, §6.4).
+    let p = unit.wrapping_mul(0x9e37_79b9_7f4a_7c15);
+    p ^ (p >> 32)
+}
 
-impl Hasher for UnitKeyHasher {
-    fn finish(&self) -> u64 {
-        self.0
+/// Scratch buffers of [`sort_keys`], kept with the window buffer so sorting does not
+/// allocate once the window has reached its size.
+#[derive(Debug, Default)]
+struct SortScratch {
+    keys: Vec<Key>,
+    ends: Vec<u32>,
+}
+
+/// Sorts keys by `(unit, seq)`, exactly as `sort_unstable`: a counting pass on the top
+/// bits of the (uniform) unit ids puts them into about one bucket per key, then each bucket
+/// with more than one key is sorted, in two linear passes plus tiny sorts instead of
+/// O(n log n) comparisons (issue 9: the sort was 4% of replay). A bucket of one flooding
+/// unit is already in order (the pass is stable and keys arrive in `seq` order), which the
+/// standard sort detects in linear time; a bucket of many units costs O(b log b).
+fn sort_keys(keys: &mut Vec<Key>, scratch: &mut SortScratch) {
+    let n = keys.len();
+    if n < 64 {
+        keys.sort_unstable();
+        return;
+    }
+    // About one bucket per key: bits = floor(log2 n), at most 2^20 buckets.
+    let bits = (usize::BITS - 1 - n.leading_zeros()).min(20);
+    let shift = 64 - bits;
+    let ends = &mut scratch.ends;
+    ends.clear();
+    ends.resize((1 << bits) + 1, 0);
+    for key in keys.iter() {
+        ends[(key.unit >> shift) as usize + 1] += 1;
+    }
+    for b in 1..ends.len() {
+        ends[b] += ends[b - 1];
+    }
+    // `ends[b]` is now where bucket b starts; filling moves it to where bucket b ends.
+    let sorted = &mut scratch.keys;
+    sorted.clear();
+    sorted.resize(n, Key::default());
+    for key in keys.iter() {
+        let at = &mut ends[(key.unit >> shift) as usize];
+        sorted[*at as usize] = *key;
+        *at += 1;
+    }
+    let mut start = 0;
+    for &end in &ends[..1 << bits] {
+        let end = end as usize;
+        if end - start > 1 {
+            sorted[start..end].sort_unstable();
+        }
+        start = end;
+    }
+    std::mem::swap(keys, sorted);
+}
+
+/// Windows used this epoch, per unit (by [`mix`]ed id): an open-addressing table with
+/// linear probing whose home slot for an id is the id's top bits. Because the window's keys
+/// are sorted by id when it closes, its lookups walk the table from front to back (each a
+/// little further on) instead of jumping at random through a table of every active unit,
+/// which with a general hash map cost a cache miss per unit and window (issue 9: 9% of
+/// replay). Slots hold the id (8 bytes, [`EpochTable::FREE`] when free) and the count (4
+/// bytes) in two arrays; the table doubles when it would pass 3/4 full, so it holds 16 to
+/// 32 bytes per unit.
+#[derive(Debug, Default)]
+struct EpochTable {
+    ids: Vec<u64>,
+    counts: Vec<u32>,
+    /// Occupied slots.
+    len: usize,
+    /// The count of the unit whose id is [`EpochTable::FREE`], which cannot use a slot.
+    free_id_count: Option<u32>,
+    /// Slots read and searches made, for tests of the probe lengths.
+    #[cfg(test)]
+    probes: std::cell::Cell<(u64, u64)>,
+}
+
+impl EpochTable {
+    /// Marks a free slot.
+    const FREE: u64 = 0;
+    /// Slots of a table's first allocation.
+    const MIN_SLOTS: usize = 1024;
+
+    /// The count of unit id `id`, inserted as 0 if absent.
+    fn entry(&mut self, id: u64) -> &mut u32 {
+        if id == Self::FREE {
+            return self.free_id_count.get_or_insert(0);
+        }
+        if 4 * (self.len + 1) > 3 * self.ids.len() {
+            self.grow();
+        }
+        let slot = self.find(id);
+        if self.ids[slot] == Self::FREE {
+            self.ids[slot] = id;
+            self.counts[slot] = 0;
+            self.len += 1;
+        }
+        &mut self.counts[slot]
     }
 
-    fn write(&mut self, bytes: &[u8]) {
-        // Not reached for u64 keys (they call `write_u64`); kept correct for any key type.
-        for b in bytes {
-            self.write_u64(u64::from(*b));
+    /// The slot holding `id`, or the free slot where it belongs. The table is never full.
+    fn find(&self, id: u64) -> usize {
+        let mask = self.ids.len() - 1;
+        let mut slot = (id >> (64 - self.ids.len().trailing_zeros())) as usize;
+        #[cfg(test)]
+        self.probes
+            .set((self.probes.get().0, self.probes.get().1 + 1));
+        loop {
+            #[cfg(test)]
+            self.probes
+                .set((self.probes.get().0 + 1, self.probes.get().1));
+            let there = self.ids[slot];
+            if there == id || there == Self::FREE {
+                return slot;
+            }
+            slot = (slot + 1) & mask;
         }
     }
 
-    fn write_u64(&mut self, v: u64) {
-        // 2^64 / φ, the multiplier of Fibonacci hashing (Knuth, TAOCP vol. 3, §6.4).
-        let p = (self.0 ^ v).wrapping_mul(0x9e37_79b9_7f4a_7c15);
-        self.0 = p ^ (p >> 32);
+    /// Makes room for `additional` more units, so that no insertion of a pass over a
+    /// window grows the table. Growing in the middle of a pass in id order would rehash a set
+    /// denser below the pass's position than above it (this window's units so far plus the
+    /// table's), and linear probing then builds clusters of hundreds of slots there: 60% more
+    /// instructions in replay before this was added.
+    fn reserve(&mut self, additional: usize) {
+        while 4 * (self.len + additional) > 3 * self.ids.len() {
+            self.grow();
+        }
+    }
+
+    fn grow(&mut self) {
+        let slots = (2 * self.ids.len()).max(Self::MIN_SLOTS);
+        let ids = std::mem::replace(&mut self.ids, vec![Self::FREE; slots]);
+        let counts = std::mem::replace(&mut self.counts, vec![0; slots]);
+        for (id, count) in ids.into_iter().zip(counts) {
+            if id != Self::FREE {
+                let slot = self.find(id);
+                self.ids[slot] = id;
+                self.counts[slot] = count;
+            }
+        }
+    }
+
+    /// Units in the table.
+    fn len(&self) -> usize {
+        self.len + usize::from(self.free_id_count.is_some())
+    }
+
+    /// Mean distance of the units' slots from their home slots (tests).
+    #[cfg(test)]
+    fn mean_displacement(&self) -> f64 {
+        let slots = self.ids.len();
+        if self.len == 0 {
+            return 0.0;
+        }
+        let (mask, shift) = (slots - 1, 64 - slots.trailing_zeros());
+        let total: usize = self
+            .ids
+            .iter()
+            .enumerate()
+            .filter(|(_, id)| **id != Self::FREE)
+            .map(|(slot, id)| slot.wrapping_sub((id >> shift) as usize) & mask)
+            .sum();
+        total as f64 / self.len as f64
+    }
+
+    /// Bytes of the table's arrays.
+    fn bytes(&self) -> usize {
+        self.ids.capacity() * std::mem::size_of::<u64>()
+            + self.counts.capacity() * std::mem::size_of::<u32>()
     }
 }
-
-/// A map keyed by unit hash (see [`UnitKeyHasher`]).
-pub type UnitMap<V> = HashMap<u64, V, BuildHasherDefault<UnitKeyHasher>>;
 
 /// The per-unit bounding stage of the engine. `T` is what is retained per event: the
 /// engine keeps each event's precomputed contribution (`contribution`); the decisions only
@@ -179,7 +352,7 @@ pub struct Bounder<T = Event> {
     max_events_per_window: usize,
     max_windows_per_epoch: u32,
     open: BTreeMap<i64, WindowBuffer<T>>,
-    windows_used: UnitMap<u32>,
+    windows_used: EpochTable,
     /// The last closed window's buffers, emptied, for the next window to open: steady
     /// traffic then neither regrows them from empty nor touches fresh pages every window.
     spare: Option<WindowBuffer<T>>,
@@ -218,7 +391,7 @@ impl<T> Bounder<T> {
             max_events_per_window: max_events_per_window as usize,
             max_windows_per_epoch,
             open: BTreeMap::new(),
-            windows_used: UnitMap::default(),
+            windows_used: EpochTable::default(),
             spare: None,
             epoch: None,
             compact_floor: MIN_COMPACT_AT,
@@ -257,7 +430,10 @@ impl<T> Bounder<T> {
         let Ok(seq) = u32::try_from(window.events.len()) else {
             return 1;
         };
-        window.keys.push(Key { unit, seq });
+        window.keys.push(Key {
+            unit: mix(unit),
+            seq,
+        });
         window.events.push(event);
         if window.events.len() >= window.compact_at {
             window.compact(self.max_events_per_window, floor, &priority)
@@ -297,8 +473,8 @@ impl<T> Bounder<T> {
         mut keep: impl FnMut(&T),
     ) -> Dropped {
         if self.epoch != Some(epoch) {
-            self.windows_used.clear();
-            self.windows_used.shrink_to_fit();
+            // Dropped, not cleared: the memory goes back with the old epoch's units.
+            self.windows_used = EpochTable::default();
             self.epoch = Some(epoch);
         }
         // Windows before this one can no longer receive events (they are closed too).
@@ -312,10 +488,12 @@ impl<T> Bounder<T> {
         // Decide on the sorted keys, then hand over the survivors in arrival order: the
         // payloads are read front to back rather than in key order (issue 9).
         let mut keep_seq = vec![false; window.events.len()];
+        let units = window.sort();
+        windows_used.reserve(units);
         window.ranked(k, &priority, |unit, seq, rank| {
             if rank == 0 {
                 // The unit's first event: does this window count for it?
-                let used = windows_used.entry(unit).or_insert(0);
+                let used = windows_used.entry(unit);
                 admitted = *used < m;
                 if admitted {
                     *used += 1;
@@ -329,15 +507,17 @@ impl<T> Bounder<T> {
                 dropped.by_window_cap += 1;
             }
         });
-        for (event, kept) in window.events.iter().zip(&keep_seq) {
+        // Each event is dropped right after it is read, while it is in cache: dropping them
+        // all afterwards read every event from memory a second time (issue 9).
+        let survivors = window.events.len() - dropped.by_event_cap as usize;
+        for (event, kept) in window.events.drain(..).zip(&keep_seq) {
             if *kept {
-                keep(event);
+                keep(&event);
             }
         }
         // The next window starts compacting at twice this one's survivors of the per-window
         // bound: steady traffic then needs no compaction before its close, and the buffer
         // stays within twice `k` per unit of a recent window (plus the floor).
-        let survivors = window.events.len() - dropped.by_event_cap as usize;
         window.clear((2 * survivors).max(self.compact_floor));
         self.spare = Some(window);
         dropped
@@ -355,15 +535,16 @@ impl<T> Bounder<T> {
     }
 
     /// Bytes held by the per-unit epoch table (the part that scales with distinct units):
-    /// hashbrown stores one control byte plus the `(u64, u32)` slot (16 bytes with padding)
-    /// per bucket.
+    /// 12 bytes per slot, see [`EpochTable`].
     pub fn unit_table_bytes(&self) -> usize {
-        self.windows_used.capacity() * (std::mem::size_of::<(u64, u32)>() + 1)
+        self.windows_used.bytes()
     }
 }
 
 #[cfg(test)]
 mod tests {
+    use proptest::prelude::Strategy as _;
+
     use super::*;
     use crate::engine::time::Millis;
 
@@ -514,7 +695,130 @@ mod tests {
         assert_eq!(run(false), run(true));
     }
 
+    /// `mix` is a bijection (so the bounder groups events exactly by unit hash): on
+    /// 100,000 consecutive and 100,000 scattered ids it never maps two to one value.
+    #[test]
+    fn mixing_keeps_distinct_units_distinct() {
+        let mut seen = std::collections::HashSet::new();
+        for i in 0..100_000u64 {
+            assert!(seen.insert(mix(i)));
+            assert!(seen.insert(mix(i.wrapping_mul(0xd1b5_4a32_d192_ed03) | 1 << 63)));
+        }
+    }
+
+    /// Unit ids in sorted passes, as `close_with` makes them: every pass reserves first,
+    /// so the table never grows during a pass, and linear probing stays short (mean
+    /// displacement from the home slot below 2 slots at up to 3/4 load; Knuth, TAOCP vol. 3,
+    /// §6.4, gives about ½(1 + 1/(1 − α)) probes for a successful search, 2.5 at α = 3/4).
+    /// Growing in the middle of a pass gave displacements in the hundreds.
+    #[test]
+    fn epoch_table_passes_stay_short() {
+        let mut table = EpochTable::default();
+        let mut x = 1u64;
+        let mut next = || {
+            // Knuth's MMIX linear congruential generator, for reproducible ids.
+            x = x
+                .wrapping_mul(6_364_136_223_846_793_005)
+                .wrapping_add(1_442_695_040_888_963_407);
+            x
+        };
+        let population: Vec<u64> = (0..50_000).map(|_| mix(next())).collect();
+        for pass in 0..40 {
+            let mut ids: Vec<u64> = (0..3_000)
+                .map(|_| population[(next() >> 33) as usize % population.len()])
+                .collect();
+            ids.sort_unstable();
+            ids.dedup();
+            table.reserve(ids.len());
+            let slots = table.ids.len();
+            for id in &ids {
+                *table.entry(*id) += 1;
+            }
+            assert_eq!(table.ids.len(), slots, "pass {pass} grew the table");
+            let mean = table.mean_displacement();
+            assert!(mean < 2.0, "pass {pass}: mean displacement {mean}");
+        }
+        // The same through the bounder, whose closes must reserve before their pass; and
+        // the searches during the passes must be short too. (The first window of an epoch
+        // fills an empty table in id order: growing during that pass would crowd all its
+        // units into the low slots, 5 slots read per search here, dozens in replay.)
+        let mut b: Bounder<P> = Bounder::new(2, 1_000);
+        for w in 0..40 {
+            for _ in 0..3_000 {
+                let unit = population[(next() >> 33) as usize % population.len()];
+                offer(&mut b, w, unit, 0, ev(w, 1.0));
+            }
+            close(&mut b, w, 0);
+            let mean = b.windows_used.mean_displacement();
+            assert!(mean < 2.0, "window {w}: mean displacement {mean}");
+        }
+        let (probes, searches) = b.windows_used.probes.get();
+        let per_search = probes as f64 / searches as f64;
+        assert!(per_search < 3.0, "{per_search} slots read per search");
+    }
+
     proptest::proptest! {
+        /// The epoch table against a `HashMap`: counts, sizes and the id that marks a free
+        /// slot, over ids that collide in their top bits, small ids and random ones, with and
+        /// without reserving.
+        #[test]
+        fn epoch_table_counts_like_a_hash_map(
+            ids in proptest::collection::vec(
+                proptest::prop_oneof![
+                    0u64..8,
+                    proptest::prelude::any::<u64>(),
+                    (0u64..64).prop_map(|i| (7u64 << 58) | i),
+                ],
+                0..3_000,
+            ),
+            reserve_first in proptest::prelude::any::<bool>(),
+        ) {
+            let mut table = EpochTable::default();
+            if reserve_first {
+                table.reserve(ids.len());
+            }
+            let mut model = std::collections::HashMap::<u64, u32>::new();
+            for id in &ids {
+                *table.entry(*id) += 1;
+                *model.entry(*id).or_insert(0) += 1;
+            }
+            proptest::prop_assert_eq!(table.len(), model.len());
+            for (id, count) in &model {
+                proptest::prop_assert_eq!(*table.entry(*id), *count);
+            }
+            proptest::prop_assert_eq!(table.len(), model.len());
+            // Growth at 3/4 load doubles: at most 8/3 slots of 12 bytes per unit (32 bytes),
+            // or per reserved unit.
+            let n = if reserve_first { ids.len() } else { model.len() };
+            proptest::prop_assert!(table.bytes() <= 12 * (8 * (n + 1) / 3).max(EpochTable::MIN_SLOTS));
+        }
+
+        /// [`sort_keys`] gives exactly `sort_unstable` (keys are distinct), for windows of
+        /// many units, of one flooding unit, and mixed, around the size where bucketing
+        /// starts.
+        #[test]
+        fn bucket_sort_matches_the_standard_sort(
+            units in proptest::collection::vec(
+                proptest::prop_oneof![0u64..4, proptest::prelude::any::<u64>()],
+                0..1_500,
+            ),
+        ) {
+            let keys: Vec<Key> = units
+                .iter()
+                .enumerate()
+                .map(|(seq, unit)| Key { unit: mix(*unit), seq: seq as u32 })
+                .collect();
+            let mut want = keys.clone();
+            want.sort_unstable();
+            let mut got = keys;
+            let mut scratch = SortScratch::default();
+            sort_keys(&mut got, &mut scratch);
+            proptest::prop_assert_eq!(&got, &want);
+            // Again with the scratch already used.
+            let mut again: Vec<Key> = want.iter().rev().copied().collect();
+            sort_keys(&mut again, &mut scratch);
+            proptest::prop_assert_eq!(again, want);
+        }
         /// Against the definition, by brute force: per window and unit, the `k` offered
         /// events with the smallest priorities (bottom-k sampling); per epoch and unit, only
         /// the first `m` windows in which it offered anything. Small compaction floors make
