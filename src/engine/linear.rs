@@ -409,23 +409,77 @@ const SPLIT_MAX: f64 = f64::from_bits((1023 + 450) << 52);
 /// Equal to `a.mul_add(b, -p)`, the fused form, up to the sign of a zero.
 #[inline(always)]
 fn two_product_err(a: f64, b: f64, p: f64) -> f64 {
-    two_product_err_of_splits(veltkamp_split(a), veltkamp_split(b), p)
-}
-
-/// Veltkamp's split of `v` into a high part of 26 significant bits and the rest (see
-/// [`two_product_err`]).
-#[inline(always)]
-fn veltkamp_split(v: f64) -> (f64, f64) {
     const SPLITTER: f64 = 134_217_729.0; // 2^27 + 1
-    let c = SPLITTER * v;
-    let hi = c - (c - v);
-    (hi, v - hi)
+    let split = |v: f64| {
+        let c = SPLITTER * v;
+        let hi = c - (c - v);
+        (hi, v - hi)
+    };
+    let (a_hi, a_lo) = split(a);
+    let (b_hi, b_lo) = split(b);
+    a_lo * b_lo - (((p - a_hi * b_hi) - a_lo * b_hi) - a_hi * b_lo)
 }
 
-/// [`two_product_err`] from the factors' splits.
+/// `v` as ±m·2^e exactly: the magnitude m (an integer below 2^53), the exponent e and the
+/// sign (IEEE 754 binary64: the significand with its implicit bit, and the exponent less the
+/// 52 fraction bits; subnormals have exponent −1074 and no implicit bit). `None` for ±∞ and
+/// NaN.
 #[inline(always)]
-fn two_product_err_of_splits((a_hi, a_lo): (f64, f64), (b_hi, b_lo): (f64, f64), p: f64) -> f64 {
-    a_lo * b_lo - (((p - a_hi * b_hi) - a_lo * b_hi) - a_hi * b_lo)
+fn exact_parts(v: f64) -> Option<ExactParts> {
+    let bits = v.to_bits();
+    let exp = ((bits >> 52) & 0x7ff) as i32;
+    let fraction = bits & ((1 << 52) - 1);
+    let (magnitude, exponent) = match exp {
+        0x7ff => return None,
+        0 => (fraction, -1074),
+        _ => (fraction | 1 << 52, exp - 1075),
+    };
+    Some(ExactParts {
+        magnitude,
+        exponent,
+        negative: bits >> 63 == 1,
+    })
+}
+
+/// A finite f64 as ±m·2^e (see [`exact_parts`]).
+#[derive(Clone, Copy, Debug, Default)]
+struct ExactParts {
+    magnitude: u64,
+    exponent: i32,
+    negative: bool,
+}
+
+/// round(a·b·2^-grid_exp), half away from zero, for a and b given by their
+/// [`exact_parts`], when the result is below 2^52 in magnitude (`None` otherwise). The
+/// product of the magnitudes is below 2^106, so it is exact in u128, and the value in grid
+/// units is ±m_a·m_b·2^-s with s = grid_exp − e_a − e_b. For s ≤ 0 it is a left shift.
+/// For s > 0, rounding half away from zero is rounding the magnitude half up,
+/// ⌊(m + 2^(s−1))/2^s⌋, which equals ⌊(⌊m/2^(s−1)⌋ + 1)/2⌋ (write m = q·2^(s−1) + r with
+/// r < 2^(s−1): both are ⌊(q + 1)/2⌋, as r/2^s < ½); for s ≥ 107 the magnitude is below
+/// 2^(s−1), so the result is 0. Pure integer arithmetic, so exactly the rounding the float
+/// paths compute.
+#[inline(always)]
+fn product_units_int(a: ExactParts, b: ExactParts, grid_exp: i32) -> Option<i64> {
+    let mag = u128::from(a.magnitude) * u128::from(b.magnitude);
+    let shift = grid_exp - a.exponent - b.exponent;
+    let units = if mag == 0 || shift >= 107 {
+        0
+    } else if shift > 0 {
+        ((mag >> (shift - 1)) + 1) >> 1
+    } else if shift > -52 && mag < 1u128 << (52 + shift) {
+        mag << -shift
+    } else {
+        return None;
+    };
+    if units >= 1 << 52 {
+        return None;
+    }
+    let units = units as i64;
+    Some(if a.negative != b.negative {
+        -units
+    } else {
+        units
+    })
 }
 
 /// 2^52: from here on every f64 is an integer (the significand has 52 fraction bits).
@@ -481,8 +535,10 @@ pub(crate) fn f64_to_i128(v: f64) -> i128 {
 /// Adds one event's contribution round(z_i z_j · 2^-grid_exp) to `acc` (len [`Layout::dim`],
 /// packed order). The rounding is to the nearest integer, with ties away from zero.
 ///
-/// Error: the product z_i z_j of the f64 inputs is taken exactly (see `product_units`), so
-/// the only error is the rounding to the grid: at most ½ (+2^-53) grid unit, that is
+/// Error: the product z_i z_j of the f64 inputs is taken exactly (in integers, see
+/// `product_units_int`, or for products beyond 2^52 grid units and vectors of more than 16
+/// entries in floating point, see `product_units`), so the only error is the rounding to
+/// the grid: at most ½ (+2^-53 on the floating-point path) grid unit, that is
 /// 2^(grid_exp−1) in value units, per entry and event. On a grid fine enough for the data
 /// (every exact product a multiple of 2^grid_exp) the accumulation is exact. The caller must
 /// [`clip`] first: the sensitivity bound assumes clipped inputs.
@@ -514,32 +570,37 @@ pub fn accumulate(layout: &Layout, x: &[f64], y: f64, grid_exp: i32, acc: &mut [
     }
     z[offset..offset + x.len()].copy_from_slice(x);
     z[offset + x.len()] = y;
+    if z.len() <= 16 {
+        // Each factor as m·2^e exactly, once per event; then every product is an integer
+        // product and a shift (issue 9: a third of the instructions of the floating-point
+        // path below, which remains for the products that do not fit).
+        let mut parts = [ExactParts::default(); 16];
+        let mut finite = true;
+        for (part, &v) in parts.iter_mut().zip(z.iter()) {
+            match exact_parts(v) {
+                Some(p) => *part = p,
+                None => finite = false,
+            }
+        }
+        if finite {
+            let mut idx = 0;
+            for i in 0..z.len() {
+                for j in i..z.len() {
+                    let units = match product_units_int(parts[i], parts[j], grid_exp) {
+                        Some(units) => i128::from(units),
+                        None => product_units(z[i], z[j], scale),
+                    };
+                    acc[idx] = acc[idx].saturating_add(units);
+                    idx += 1;
+                }
+            }
+            return;
+        }
+    }
     // Dekker's product error is exact for every pair when no |z_i| is tiny or huge.
     let split_exact = z
         .iter()
         .all(|v| *v == 0.0 || (SPLIT_MIN..=SPLIT_MAX).contains(&v.abs()));
-    if split_exact && z.len() <= 16 {
-        // Each factor's Veltkamp split once, not once per product it is in (issue 9): the
-        // same operations on the same values, so the same integers.
-        let mut parts = [(0.0f64, 0.0f64); 16];
-        for (part, &v) in parts.iter_mut().zip(z.iter()) {
-            *part = veltkamp_split(v);
-        }
-        let mut idx = 0;
-        for (i, &zi) in z.iter().enumerate() {
-            for (j, &zj) in z.iter().enumerate().skip(i) {
-                let p = zi * zj;
-                let err = two_product_err_of_splits(parts[i], parts[j], p);
-                let units = match units_small(p, err, scale) {
-                    Some(units) => i128::from(units),
-                    None => product_units(zi, zj, scale),
-                };
-                acc[idx] = acc[idx].saturating_add(units);
-                idx += 1;
-            }
-        }
-        return;
-    }
     let mut idx = 0;
     for (i, &zi) in z.iter().enumerate() {
         for &zj in &z[i..] {
@@ -2186,6 +2247,49 @@ mod tests {
             v in prop_oneof![any::<f64>(), -1e6..1e6f64, (-1_000_000i64..1_000_000).prop_map(|k| k as f64 + 0.5)],
         ) {
             assert_rounding_agrees(v);
+        }
+
+        /// The integer path of the moments against the definition, in big-integer
+        /// arithmetic: a finite double is ±m·2^e with m its 53-bit significand (IEEE 754
+        /// binary64), so a·b·2^-g = ±m_a·m_b·2^-(g − e_a − e_b) exactly, and rounding half
+        /// away from zero is ⌊(2|N| + 2^s)/2^(s+1)⌋ for N = m_a·m_b, s = g − e_a − e_b > 0.
+        /// The path must give that integer whenever it is below 2^52 and decline otherwise.
+        /// Dyadic inputs hit exact ties; subnormals and wide grids hit the shift limits.
+        #[test]
+        fn integer_product_rounding_matches_big_integer_arithmetic(
+            a in prop_oneof![any::<f64>(), -4.0..4.0f64, (-4096i64..4096, 0i32..30).prop_map(|(k, j)| k as f64 * pow2(-j)), -1e-310..1e-310f64],
+            b in prop_oneof![any::<f64>(), -4.0..4.0f64, (-4096i64..4096, 0i32..30).prop_map(|(k, j)| k as f64 * pow2(-j)), -1e-310..1e-310f64],
+            grid_exp in prop_oneof![-60i32..60, -900i32..900, -2200i32..-1000],
+        ) {
+            use num_bigint::BigInt;
+            use num_traits::{Signed, ToPrimitive};
+            let parts = |v: f64| {
+                let bits = v.to_bits();
+                let biased = ((bits >> 52) & 0x7ff) as i32;
+                let frac = bits & ((1u64 << 52) - 1);
+                if biased == 0 { (frac, -1074) } else { (frac | 1u64 << 52, biased - 1075) }
+            };
+            let (pa, pb) = (exact_parts(a), exact_parts(b));
+            prop_assume!(pa.is_some() && pb.is_some());
+            let ((ma, ea), (mb, eb)) = (parts(a), parts(b));
+            let n = BigInt::from(ma) * BigInt::from(mb);
+            let s = grid_exp - ea - eb;
+            let magnitude = if s <= 0 {
+                n << (-s) as usize
+            } else {
+                (n * 2 + (BigInt::from(1) << s as usize)) >> (s + 1) as usize
+            };
+            let negative = (a < 0.0) != (b < 0.0);
+            let want = magnitude
+                .abs()
+                .to_i64()
+                .filter(|m| *m < 1 << 52)
+                .map(|m| if negative { -m } else { m });
+            prop_assert_eq!(
+                product_units_int(pa.unwrap(), pb.unwrap(), grid_exp),
+                want,
+                "a = {:e}, b = {:e}, grid 2^{}", a, b, grid_exp
+            );
         }
 
         /// The i64 fast path of the product rounding gives exactly the general path's
