@@ -58,6 +58,8 @@ struct StatLayout {
 #[derive(Clone, Debug)]
 pub struct Contributor {
     stats: Vec<StatLayout>,
+    /// Per statistic, per component: the `(offset, dim)` of its values.
+    spans: Vec<Vec<(usize, usize)>>,
     width: usize,
 }
 
@@ -65,7 +67,7 @@ impl Contributor {
     /// The contributor of `plan`.
     pub fn new(plan: &Plan) -> Contributor {
         let mut width = 0;
-        let stats = plan
+        let stats: Vec<StatLayout> = plan
             .stats
             .iter()
             .map(|s| StatLayout {
@@ -93,7 +95,20 @@ impl Contributor {
                     .collect(),
             })
             .collect();
-        Contributor { stats, width }
+        let spans = stats
+            .iter()
+            .map(|s| {
+                s.components
+                    .iter()
+                    .map(|(c, offset)| (*offset, c.dim))
+                    .collect()
+            })
+            .collect();
+        Contributor {
+            stats,
+            spans,
+            width,
+        }
     }
 
     /// The contribution of `ev` (an event parsed with this plan's schema).
@@ -161,30 +176,35 @@ impl Contributor {
     /// `groups × dim` vectors (the engine's window aggregate). Saturating, like the moment
     /// accumulation: a sum can never wrap around (see `linear::accumulate`).
     pub fn add(&self, contribution: &Contribution, aggregate: &mut [Vec<Vec<i128>>]) {
-        for ((s, &group), per_component) in self
-            .stats
-            .iter()
-            .zip(&contribution.groups)
-            .zip(aggregate.iter_mut())
-        {
+        match &contribution.wide {
+            None => self.add_values(&contribution.groups, &contribution.narrow, aggregate),
+            Some(wide) => self.add_values(&contribution.groups, wide, aggregate),
+        }
+    }
+
+    /// [`Contributor::add`] of one representation of the values, with the statistics'
+    /// `(offset, dim)` spans in one small table (issue 9: walking the component plans and
+    /// re-matching the representation per component was a tenth of replay's instructions).
+    fn add_values<V: Copy + Into<i128>>(
+        &self,
+        groups: &[u32],
+        values: &[V],
+        aggregate: &mut [Vec<Vec<i128>>],
+    ) {
+        for ((spans, &group), per_component) in self.spans.iter().zip(groups).zip(aggregate) {
             if group == NOT_PART {
                 continue;
             }
             let g = group as usize;
-            for ((c, offset), slot) in s.components.iter().zip(per_component.iter_mut()) {
-                let to = &mut slot[g * c.dim..(g + 1) * c.dim];
-                let range = *offset..*offset + c.dim;
-                match &contribution.wide {
-                    None => {
-                        for (acc, v) in to.iter_mut().zip(&contribution.narrow[range]) {
-                            *acc = acc.saturating_add(i128::from(*v));
-                        }
-                    }
-                    Some(wide) => {
-                        for (acc, v) in to.iter_mut().zip(&wide[range]) {
-                            *acc = acc.saturating_add(*v);
-                        }
-                    }
+            for (&(offset, dim), slot) in spans.iter().zip(per_component.iter_mut()) {
+                if dim == 1 {
+                    // Counts and sums: one value, no loop.
+                    slot[g] = slot[g].saturating_add(values[offset].into());
+                    continue;
+                }
+                let to = &mut slot[g * dim..(g + 1) * dim];
+                for (acc, v) in to.iter_mut().zip(&values[offset..offset + dim]) {
+                    *acc = acc.saturating_add((*v).into());
                 }
             }
         }
