@@ -101,13 +101,14 @@ n_units=$(sed -E 's/.*unit table: ([0-9]+) units.*/\1/' <<< "$units_line")
 bytes_per_unit=$(sed -E 's/.*units, ([0-9]+) bytes\/unit.*/\1/' <<< "$units_line")
 table_mib=$(awk -v n="$n_units" -v b="$bytes_per_unit" 'BEGIN { printf "%.1f", n * b / 1048576 }')
 
+# row NAME FILE TABLE_MIB: the floor has no unit table (0).
 row() {
-    local name=$1 file=$2
+    local name=$1 file=$2 t=$3
     local wall cpu rss
     wall=$(median "$file" 1)
     cpu=$(median "$file" 2)
     rss=$(median "$file" 3)
-    awk -v name="$name" -v n="$n_lines" -v w="$wall" -v fw="$floor_wall" -v cpu="$cpu" -v rss="$rss" -v t="$table_mib" \
+    awk -v name="$name" -v n="$n_lines" -v w="$wall" -v fw="$floor_wall" -v cpu="$cpu" -v rss="$rss" -v t="$t" \
         'BEGIN { printf "| %s | %.0f | %.2f | %.2f | %.2f | %.1f | %.1f |\n", name, n / w, fw / w, w, cpu, rss / 1024, rss / 1024 - t }'
 }
 
@@ -120,9 +121,9 @@ echo "7 days, seed 2026. Medians of $runs runs; events/s = lines / wall-clock se
 echo
 echo "| program | events/s | ratio to floor | wall s | CPU s | peak RSS MiB | RSS minus unit table MiB |"
 echo "|---|---|---|---|---|---|---|"
-row "parse floor (serde_json into Event, 1 thread)" "$dir/floor.txt"
-row "scrim replay --threads 1" "$dir/replay-1.txt"
-row "scrim replay --threads 2" "$dir/replay-2.txt"
+row "parse floor (serde_json into Event, 1 thread)" "$dir/floor.txt" 0
+row "scrim replay --threads 1" "$dir/replay-1.txt" "$table_mib"
+row "scrim replay --threads 2" "$dir/replay-2.txt" "$table_mib"
 echo
 echo "Unit table at the end of the replay: $n_units active units, $bytes_per_unit bytes per active unit ($table_mib MiB)."
 echo "Releases of --threads 1 and --threads 2: identical ($(wc -l < "$dir/out-1/releases.jsonl") records)."

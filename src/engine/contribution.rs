@@ -1,17 +1,18 @@
-//! One event's exact contribution to every statistic, on the statistics' grids, computed
-//! as soon as the event is parsed.
+//! One event's exact contribution to every statistic, on the statistics' grids.
 //!
 //! What an event adds to a window aggregate depends on the event and the plan only (its
 //! group in each statistic, its clamped values rounded to each component's grid, its
-//! clipped moment vector): not on the window, on other events or on bounding. So the work
-//! can run wherever the line is parsed, including `scrim replay`'s parse workers, and the
-//! engine thread only adds integer vectors. Contribution bounding keeps or drops whole
-//! contributions, exactly as it kept or dropped whole events.
+//! clipped moment vector): not on the window, on other events or on bounding. The engine
+//! adds it when the event's window closes, for the events that survive contribution
+//! bounding ([`Contributor::add_event`]), or at once when units are not bounded. Adding is
+//! integer addition, so the order of events never matters.
 //!
-//! The values are exactly those the aggregation has always used (same clamps, same grid
-//! rounding, same [`linear::accumulate`]); adding them to a window is integer addition, so
-//! the order of events never matters and releases are identical whichever thread computes
-//! them. Sensitivities and their derivations are in `plan` and `linear`.
+//! (Until issue 9's last round the contribution was computed as soon as a line was parsed,
+//! on `scrim replay`'s parse workers, and kept with the event until its window closed; at
+//! 256 bytes per retained event, copying it in and out of the window buffers cost more than
+//! computing it late, for survivors only.)
+//!
+//! Sensitivities and their derivations are in `plan` and `linear`.
 
 use smallvec::SmallVec;
 
@@ -24,23 +25,17 @@ use crate::engine::plan::{ComponentPlan, ComponentRole, Plan};
 /// sizes are far below `u32::MAX`: configuration caps keys per field).
 const NOT_PART: u32 = u32::MAX;
 
-/// Coordinates a [`Contribution`] holds inline (see there).
+/// Coordinates of a plan whose contributions [`Contributor::add_event`] computes on the
+/// stack (the demo has 15).
 const INLINE_VALUES: usize = 16;
 
 /// One event's contribution: per statistic its group (or `NOT_PART`), and per component,
-/// in plan order, its grid values (`dim` each, zeros for statistics it is not part of).
-///
-/// Grid values are i128 (the aggregates' type), but one event's values fit i64 for any
-/// realistic grid (the grids leave 2^40 or so per event, see `linear::default_grid_exp`),
-/// so they are kept as i64, inline for plans up to 16 coordinates and 8 statistics (the
-/// demo has 15 and 5): retained events are then a third of the size, which matters for
-/// the bounding arena and for handing events between threads. A contribution with any
-/// value outside i64 keeps all its values in `wide` instead; nothing is ever truncated.
+/// in plan order, its grid values (`dim` each, zeros for statistics it is not part of), in
+/// the aggregates' type.
 #[derive(Clone, Debug, PartialEq, Eq)]
 pub struct Contribution {
     groups: SmallVec<[u32; 6]>,
-    narrow: SmallVec<[i64; INLINE_VALUES]>,
-    wide: Option<Box<[i128]>>,
+    values: SmallVec<[i128; INLINE_VALUES]>,
 }
 
 /// How one statistic's group is found and where its components' values go.
@@ -53,8 +48,7 @@ struct StatLayout {
     components: Vec<(ComponentPlan, usize)>,
 }
 
-/// Computes [`Contribution`]s for one plan; built once, shared by reference (or `Arc`)
-/// with parse workers.
+/// Computes [`Contribution`]s for one plan; built once per engine.
 #[derive(Clone, Debug)]
 pub struct Contributor {
     stats: Vec<StatLayout>,
@@ -114,47 +108,9 @@ impl Contributor {
     /// The contribution of `ev` (an event parsed with this plan's schema).
     pub fn contribution(&self, ev: &Event) -> Contribution {
         let mut groups = SmallVec::with_capacity(self.stats.len());
-        if self.width <= INLINE_VALUES {
-            // The usual case, on the stack: no zero-filled SmallVec and no collect (issue 9:
-            // the two were 3% of replay).
-            let mut values = [0i128; INLINE_VALUES];
-            self.fill(ev, &mut groups, &mut values[..self.width]);
-            let mut narrow = [0i64; INLINE_VALUES];
-            let mut fits = true;
-            for (to, v) in narrow.iter_mut().zip(&values[..self.width]) {
-                match i64::try_from(*v) {
-                    Ok(v) => *to = v,
-                    Err(_) => fits = false,
-                }
-            }
-            return if fits {
-                Contribution {
-                    groups,
-                    narrow: SmallVec::from_buf_and_len(narrow, self.width),
-                    wide: None,
-                }
-            } else {
-                Contribution {
-                    groups,
-                    narrow: SmallVec::new(),
-                    wide: Some(values[..self.width].into()),
-                }
-            };
-        }
-        let mut values = vec![0i128; self.width];
+        let mut values = SmallVec::from_elem(0, self.width);
         self.fill(ev, &mut groups, &mut values);
-        match values.iter().map(|&v| i64::try_from(v).ok()).collect() {
-            Some(narrow) => Contribution {
-                groups,
-                narrow,
-                wide: None,
-            },
-            None => Contribution {
-                groups,
-                narrow: SmallVec::new(),
-                wide: Some(values.into()),
-            },
-        }
+        Contribution { groups, values }
     }
 
     /// Pushes `ev`'s group in each statistic onto `groups` and adds its values to
@@ -172,25 +128,31 @@ impl Contributor {
         }
     }
 
+    /// Adds `ev`'s contribution to a window aggregate (see [`Contributor::add`]): exactly
+    /// `add(&contribution(ev), aggregate)`, without building the [`Contribution`] (the
+    /// values stay on the stack for plans up to 16 coordinates).
+    pub fn add_event(&self, ev: &Event, aggregate: &mut [Vec<Vec<i128>>]) {
+        if self.width > INLINE_VALUES {
+            self.add(&self.contribution(ev), aggregate);
+            return;
+        }
+        let mut groups = SmallVec::with_capacity(self.stats.len());
+        let mut values = [0i128; INLINE_VALUES];
+        self.fill(ev, &mut groups, &mut values[..self.width]);
+        self.add_values(&groups, &values[..self.width], aggregate);
+    }
+
     /// Adds `contribution` to a window aggregate laid out as `[stat][component]` → flat
     /// `groups × dim` vectors (the engine's window aggregate). Saturating, like the moment
     /// accumulation: a sum can never wrap around (see `linear::accumulate`).
     pub fn add(&self, contribution: &Contribution, aggregate: &mut [Vec<Vec<i128>>]) {
-        match &contribution.wide {
-            None => self.add_values(&contribution.groups, &contribution.narrow, aggregate),
-            Some(wide) => self.add_values(&contribution.groups, wide, aggregate),
-        }
+        self.add_values(&contribution.groups, &contribution.values, aggregate);
     }
 
-    /// [`Contributor::add`] of one representation of the values, with the statistics'
-    /// `(offset, dim)` spans in one small table (issue 9: walking the component plans and
-    /// re-matching the representation per component was a tenth of replay's instructions).
-    fn add_values<V: Copy + Into<i128>>(
-        &self,
-        groups: &[u32],
-        values: &[V],
-        aggregate: &mut [Vec<Vec<i128>>],
-    ) {
+    /// [`Contributor::add`] of groups and values, with the statistics' `(offset, dim)`
+    /// spans in one small table (issue 9: walking the component plans per event was a
+    /// tenth of replay's instructions).
+    fn add_values(&self, groups: &[u32], values: &[i128], aggregate: &mut [Vec<Vec<i128>>]) {
         for ((spans, &group), per_component) in self.spans.iter().zip(groups).zip(aggregate) {
             if group == NOT_PART {
                 continue;
@@ -199,12 +161,12 @@ impl Contributor {
             for (&(offset, dim), slot) in spans.iter().zip(per_component.iter_mut()) {
                 if dim == 1 {
                     // Counts and sums: one value, no loop.
-                    slot[g] = slot[g].saturating_add(values[offset].into());
+                    slot[g] = slot[g].saturating_add(values[offset]);
                     continue;
                 }
                 let to = &mut slot[g * dim..(g + 1) * dim];
                 for (acc, v) in to.iter_mut().zip(&values[offset..offset + dim]) {
-                    *acc = acc.saturating_add((*v).into());
+                    *acc = acc.saturating_add(*v);
                 }
             }
         }
@@ -320,11 +282,12 @@ mod tests {
             numbers: numbers.clone(),
         };
         let c = contributor.contribution(&ev);
-        assert_eq!(c.wide.is_some(), wide, "which representation");
-        let values: Vec<i128> = match &c.wide {
-            Some(wide) => wide.to_vec(),
-            None => c.narrow.iter().map(|&v| i128::from(v)).collect(),
-        };
+        assert_eq!(
+            c.values.iter().any(|v| i64::try_from(*v).is_err()),
+            wide,
+            "values beyond i64"
+        );
+        let values: Vec<i128> = c.values.to_vec();
         let mut offset = 0;
         for (s, &group) in plan.stats.iter().zip(&c.groups) {
             let want_group = match s.name.as_str() {
@@ -386,6 +349,14 @@ mod tests {
             .unwrap();
         let count = 1i128 << -plan.stats[zone].components[0].grid_exp;
         assert_eq!(agg[zone][0], vec![0, 0, 0, 2 * count, 0]);
+        // `add_event`, the engine's path, adds exactly the same.
+        let mut by_event: Vec<Vec<Vec<i128>>> = agg
+            .iter()
+            .map(|per| per.iter().map(|v| vec![0; v.len()]).collect())
+            .collect();
+        contributor.add_event(&ev, &mut by_event);
+        contributor.add_event(&ev, &mut by_event);
+        assert_eq!(by_event, agg);
     }
 
     /// A category value declared for another statistic only leaves that statistic alone.
@@ -425,7 +396,7 @@ zone = ["a", "b"]
         let c = contributor.contribution(&ev);
         assert_eq!(c.groups.as_slice(), [NOT_PART, 1]);
         assert_eq!(
-            c.narrow[0], 0,
+            c.values[0], 0,
             "nothing computed for a statistic it is not part of"
         );
     }

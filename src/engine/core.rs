@@ -21,7 +21,7 @@ use smallvec::SmallVec;
 
 use crate::config::Config;
 use crate::engine::bound::Bounder;
-use crate::engine::contribution::{Contribution, Contributor};
+use crate::engine::contribution::Contributor;
 use crate::engine::dd::Dd;
 use crate::engine::event::{Event, LineParser, LineShape, RejectReason, Rejection, Schema};
 use crate::engine::ledger::{BudgetError, EpochCharge, Ledger};
@@ -187,9 +187,8 @@ pub struct Engine {
     max_event_time: Option<Millis>,
     open: BTreeMap<i64, WindowAgg>,
     bounder: Option<Bounder<Retained>>,
-    /// Turns events into their exact per-statistic contributions; shared with
-    /// [`LineDecoder`]s so parse workers can do that work too.
-    contributor: Arc<Contributor>,
+    /// Turns events into their exact per-statistic contributions.
+    contributor: Contributor,
     epoch: Option<EpochState>,
     ledger: Ledger,
     halted: Option<BudgetError>,
@@ -229,7 +228,7 @@ impl Engine {
             max_line_bytes: config.input.max_line_bytes,
         };
         let parser = LineParser::new(schema).map_err(|e| EngineError::Schema(e.to_string()))?;
-        let contributor = Arc::new(Contributor::new(&plan));
+        let contributor = Contributor::new(&plan);
         let (bounder, lifetime, unit) = match &plan.level {
             PrivacyLevel::Event => (None, None, None),
             PrivacyLevel::Unit {
@@ -367,7 +366,6 @@ impl Engine {
         LineDecoder {
             parser: Arc::clone(&self.parser),
             hashers: self.hashers.clone(),
-            contributor: Arc::clone(&self.contributor),
         }
     }
 
@@ -389,20 +387,14 @@ impl Engine {
         let Some(w) = self.accept(ev.time) else {
             return;
         };
-        let keyed = ev.unit.map(|unit| (unit, priority_input(unit, &ev)));
-        let contribution = self.contributor.contribution(&ev);
-        self.place(w, keyed, contribution);
+        self.place(w, ev);
     }
 
     /// Handles a line prepared by [`LineDecoder::prepare`] of this engine's decoder:
     /// `handle_line(l)` is exactly `handle_prepared(decoder.prepare(l))`.
     pub fn handle_prepared(&mut self, prepared: Prepared) {
         match prepared.outcome {
-            Ok(event) => {
-                if let Some(w) = self.accept(event.time) {
-                    self.place(w, event.keyed, event.contribution);
-                }
-            }
+            Ok(event) => self.handle_event(event),
             Err(rej) => self.reject(rej.reason.label()),
         }
     }
@@ -432,25 +424,21 @@ impl Engine {
         Some(w)
     }
 
-    /// Puts an accepted event's contribution into window `w`: through the bounder when
-    /// the engine bounds units (`keyed`: the unit hash and what the event's bounding
-    /// priority is a hash of), straight into the window's aggregate otherwise. Then closes
-    /// what the watermark passed.
-    fn place(&mut self, w: i64, keyed: Option<(u64, PriorityInput)>, contribution: Contribution) {
-        match (&mut self.bounder, keyed) {
-            (Some(b), Some((unit, priority_input))) => {
-                let retained = Retained {
-                    contribution,
-                    priority_input,
-                };
+    /// Puts an accepted event into window `w`: into the bounder when the engine bounds
+    /// units (its contribution is added when the window closes, if it survives), its
+    /// contribution straight into the window's aggregate otherwise. Then closes what the
+    /// watermark passed.
+    fn place(&mut self, w: i64, ev: Event) {
+        match (&mut self.bounder, ev.unit) {
+            (Some(b), Some(unit)) => {
                 let hashers = &self.hashers;
                 self.counters.dropped_event_bound +=
-                    b.offer(w, unit, retained, |r| r.priority(hashers));
+                    b.offer(w, unit, ev, |e| bounding_priority(hashers, e));
             }
             _ => {
                 let plan = &self.plan;
                 let agg = self.open.entry(w).or_insert_with(|| WindowAgg::empty(plan));
-                self.contributor.add(&contribution, &mut agg.values);
+                self.contributor.add_event(&ev, &mut agg.values);
             }
         }
         self.advance_watermark();
@@ -527,8 +515,8 @@ impl Engine {
             let dropped = b.close_with(
                 w,
                 epoch,
-                |r| r.priority(hashers),
-                |r| contributor.add(&r.contribution, &mut agg.values),
+                |e| bounding_priority(hashers, e),
+                |e| contributor.add_event(e, &mut agg.values),
             );
             self.counters.dropped_event_bound += dropped.by_event_cap;
             self.counters.dropped_window_bound += dropped.by_window_cap;
@@ -744,28 +732,14 @@ impl Engine {
 pub struct LineDecoder {
     parser: Arc<LineParser>,
     hashers: EventHashers,
-    /// The engine's contributor: [`LineDecoder::prepare`] computes each event's
-    /// contributions, so parse workers take that work off the engine thread.
-    contributor: Arc<Contributor>,
 }
 
 /// A line made ready off the engine thread by [`LineDecoder::prepare`], for
-/// [`Engine::handle_prepared`]: the parser's rejection, or what the engine needs of the
-/// event. Only `prepare` builds one, so the priority and the contribution are always the
-/// engine's own.
+/// [`Engine::handle_prepared`]: the parser's verdict, with the unit id already replaced by
+/// its keyed hash. Only `prepare` builds one, so the hash is always the engine's own.
 #[derive(Clone, Debug, PartialEq)]
 pub struct Prepared {
-    outcome: Result<PreparedEvent, Rejection>,
-}
-
-/// What the engine needs of an accepted line.
-#[derive(Clone, Debug, PartialEq)]
-struct PreparedEvent {
-    time: Millis,
-    /// The unit hash and what the event's bounding priority is a hash of (events with a
-    /// unit).
-    keyed: Option<(u64, PriorityInput)>,
-    contribution: Contribution,
+    outcome: Result<Event, Rejection>,
 }
 
 impl Prepared {
@@ -788,10 +762,9 @@ impl LineDecoder {
         decode_line(&self.parser, &self.hashers, line, shape)
     }
 
-    /// [`LineDecoder::decode`] plus, for an event, its bounding priority (when it has a
-    /// unit) and its contribution to every statistic. All are pure functions of the line
-    /// and the key, so parse workers compute them and the engine thread only admits the
-    /// event. Use the result with the engine that made this decoder.
+    /// [`LineDecoder::decode`], packaged for [`Engine::handle_prepared`]: a pure function
+    /// of the line and the key, so parse workers compute it and the engine thread only
+    /// admits the event. Use the result with the engine that made this decoder.
     pub fn prepare(&self, line: &[u8]) -> Prepared {
         self.prepare_with(line, &mut LineShape::new())
     }
@@ -799,12 +772,9 @@ impl LineDecoder {
     /// [`LineDecoder::prepare`] with a [`LineShape`] carried between calls (see
     /// [`LineDecoder::decode_with`]).
     pub fn prepare_with(&self, line: &[u8], shape: &mut LineShape) -> Prepared {
-        let outcome = self.decode_with(line, shape).map(|ev| PreparedEvent {
-            time: ev.time,
-            keyed: ev.unit.map(|unit| (unit, priority_input(unit, &ev))),
-            contribution: self.contributor.contribution(&ev),
-        });
-        Prepared { outcome }
+        Prepared {
+            outcome: self.decode_with(line, shape),
+        }
     }
 
     /// The engine's parser, for callers that bring their own unit hash (benchmarks).
@@ -843,21 +813,20 @@ fn decode_line(
     parser.parse_with_shape(line, &|raw: &[u8]| hashers.unit.hash(raw), shape)
 }
 
-/// What the bounder keeps of an event: its contribution, and the bytes its bounding
-/// priority is a hash of. The hash is taken only when the event's unit has more than `k`
-/// events in the window (see `bound`), which is rare: most units have at most `k`.
-#[derive(Clone, Debug)]
-pub struct Retained {
-    contribution: Contribution,
-    priority_input: PriorityInput,
-}
+/// What the bounder keeps of an event: the event itself (120 bytes). Its contribution is
+/// computed when its window closes, and only if it survives the bounds; its priority only
+/// when its unit has more than `k` events in the window (see `bound`), which is rare.
+/// (Keeping the precomputed contribution and priority bytes instead took 256 bytes per
+/// event, and copying them in and out of the window buffers cost more than computing them
+/// late: issue 9.)
+pub type Retained = Event;
 
-impl Retained {
-    /// The event's priority for bottom-k bounding: [`priority_input`] hashed with the
-    /// priority key.
-    fn priority(&self, hashers: &EventHashers) -> u64 {
-        hashers.priority.hash(&self.priority_input)
-    }
+/// An event's priority for bottom-k bounding: [`priority_input`] hashed with the priority
+/// key. Only events with a unit are bounded.
+fn bounding_priority(hashers: &EventHashers, ev: &Event) -> u64 {
+    hashers
+        .priority
+        .hash(&priority_input(ev.unit.unwrap_or_default(), ev))
 }
 
 /// The bytes of an event's bounding priority (see [`priority_input`]); 64 inline bytes
