@@ -20,7 +20,7 @@
 //! # Memory
 //! Unit ids are never stored: the parser hands over a keyed 64-bit hash. The epoch table
 //! holds one `u64 → u32` entry per active unit (the number of windows used), 16 to 32 bytes
-//! per unit (see [`EpochTable`]). Open windows
+//! per unit (see `EpochTable`). Open windows
 //! hold at most about `2k` events per unit, so their size is bounded by the number of
 //! active units, not by the event rate: an open window buffers its events and compacts the
 //! buffer to each unit's `k` smallest priorities whenever it doubles.
@@ -535,7 +535,7 @@ impl<T> Bounder<T> {
     }
 
     /// Bytes held by the per-unit epoch table (the part that scales with distinct units):
-    /// 12 bytes per slot, see [`EpochTable`].
+    /// 12 bytes per slot, see `EpochTable`.
     pub fn unit_table_bytes(&self) -> usize {
         self.windows_used.bytes()
     }
