@@ -136,24 +136,12 @@ impl<T> WindowBuffer<T> {
         }
     }
 
-    /// Drops every event beyond its unit's `k` smallest keys, handing each to `dropped`
-    /// first; returns how many it dropped. The survivors keep their arrival order (and so
-    /// their tie order).
-    fn compact(
-        &mut self,
-        k: usize,
-        compact_floor: usize,
-        priority: &impl Fn(&T) -> u64,
-        dropped: &mut impl FnMut(&T),
-    ) -> u64 {
+    /// Drops every event beyond its unit's `k` smallest keys; returns how many it dropped.
+    /// The survivors keep their arrival order (and so their tie order).
+    fn compact(&mut self, k: usize, compact_floor: usize, priority: &impl Fn(&T) -> u64) -> u64 {
         self.sort();
         let mut keep = vec![false; self.events.len()];
         self.ranked(k, priority, |_, seq, rank| keep[seq as usize] = rank < k);
-        for (event, kept) in self.events.iter().zip(&keep) {
-            if !kept {
-                dropped(event);
-            }
-        }
         let before = self.events.len();
         let mut flags = keep.iter();
         self.events
@@ -432,19 +420,6 @@ impl<T> Bounder<T> {
         event: T,
         priority: impl Fn(&T) -> u64,
     ) -> u64 {
-        self.offer_with(window_idx, unit, event, priority, |_| {})
-    }
-
-    /// [`Bounder::offer`] that hands every event a compaction drops to `dropped` (the
-    /// offered event itself included, if it is dropped at once).
-    pub fn offer_with(
-        &mut self,
-        window_idx: i64,
-        unit: u64,
-        event: T,
-        priority: impl Fn(&T) -> u64,
-        mut dropped: impl FnMut(&T),
-    ) -> u64 {
         let (spare, floor) = (&mut self.spare, self.compact_floor);
         let window = self
             .open
@@ -453,7 +428,6 @@ impl<T> Bounder<T> {
         // Sequence numbers are u32: a buffer that cannot number another event (2^32 events
         // held in memory, unreachable in practice) drops it rather than mis-order it.
         let Ok(seq) = u32::try_from(window.events.len()) else {
-            dropped(&event);
             return 1;
         };
         window.keys.push(Key {
@@ -462,7 +436,7 @@ impl<T> Bounder<T> {
         });
         window.events.push(event);
         if window.events.len() >= window.compact_at {
-            window.compact(self.max_events_per_window, floor, &priority, &mut dropped)
+            window.compact(self.max_events_per_window, floor, &priority)
         } else {
             0
         }
@@ -481,11 +455,7 @@ impl<T> Bounder<T> {
         T: Clone,
     {
         let mut kept = Vec::new();
-        let dropped = self.close_with(window_idx, epoch, priority, |ev, survives| {
-            if survives {
-                kept.push(ev.clone());
-            }
-        });
+        let dropped = self.close_with(window_idx, epoch, priority, |ev| kept.push(ev.clone()));
         ClosedWindow {
             kept,
             dropped_by_event_cap: dropped.by_event_cap,
@@ -493,15 +463,14 @@ impl<T> Bounder<T> {
         }
     }
 
-    /// [`Bounder::close`] without collecting: calls `each(event, survives)` for every
-    /// event of the window, in arrival order, and returns the numbers dropped by each
-    /// bound.
+    /// [`Bounder::close`] without collecting: hands every surviving event to `keep` (in no
+    /// particular order) and returns the numbers dropped by each bound.
     pub fn close_with(
         &mut self,
         window_idx: i64,
         epoch: u64,
         priority: impl Fn(&T) -> u64,
-        mut each: impl FnMut(&T, bool),
+        mut keep: impl FnMut(&T),
     ) -> Dropped {
         if self.epoch != Some(epoch) {
             // Dropped, not cleared: the memory goes back with the old epoch's units.
@@ -542,7 +511,9 @@ impl<T> Bounder<T> {
         // all afterwards read every event from memory a second time (issue 9).
         let survivors = window.events.len() - dropped.by_event_cap as usize;
         for (event, kept) in window.events.drain(..).zip(&keep_seq) {
-            each(&event, *kept);
+            if *kept {
+                keep(&event);
+            }
         }
         // The next window starts compacting at twice this one's survivors of the per-window
         // bound: steady traffic then needs no compaction before its close, and the buffer
@@ -905,30 +876,7 @@ mod tests {
             want.sort_unstable();
             // Equal priorities: the earlier offer wins, in the brute force (sorted by
             // priority, then offer index) and in the bounder (keys sorted by arrival).
-            proptest::prop_assert_eq!(&got, &want);
-
-            // The callbacks: every offer is handed over exactly once, as kept (the same
-            // survivors) or as dropped (at a compaction or at close).
-            let mut b = Bounder::with_compact_floor(k, m, compact_floor);
-            let (mut kept, mut dropped) = (Vec::new(), Vec::new());
-            for (i, (w, unit, priority)) in offers.iter().enumerate() {
-                b.offer_with(*w, *unit, (*priority, ev(*w, i as f64)), prio, |p| {
-                    dropped.push(p.1.numbers[0] as usize);
-                });
-            }
-            for w in 0..6 {
-                b.close_with(w, (w / 3) as u64, prio, |p, survives| {
-                    let i = p.1.numbers[0] as usize;
-                    if survives { kept.push(i) } else { dropped.push(i) }
-                });
-            }
-            kept.sort_unstable();
-            proptest::prop_assert_eq!(&kept, &want);
-            let mut all = kept;
-            all.extend(&dropped);
-            all.sort_unstable();
-            proptest::prop_assert_eq!(all, (0..offers.len()).collect::<Vec<_>>());
-            proptest::prop_assert_eq!(dropped.len() as u64, want_dropped_now + want_dropped_cap);
+            proptest::prop_assert_eq!(got, want);
             proptest::prop_assert_eq!(dropped_now, want_dropped_now);
             proptest::prop_assert_eq!(dropped_cap, want_dropped_cap);
         }

@@ -2,13 +2,15 @@
 //!
 //! What an event adds to a window aggregate depends on the event and the plan only (its
 //! group in each statistic, its clamped values rounded to each component's grid, its
-//! clipped moment vector): not on the window, on other events or on bounding. Adding is
-//! integer addition, so the order of events never matters. The engine gets it two ways
-//! (see `Engine::place`): `scrim replay`'s parse workers compute it as a
-//! [`NarrowContribution`] and the engine adds it to the window on arrival (subtracting it
-//! again if bounding drops the event); lines the engine parses itself have it computed
-//! when their window closes, for the survivors only ([`Contributor::add_event_if_narrow`]).
-//! Both give the same aggregates.
+//! clipped moment vector): not on the window, on other events or on bounding. The engine
+//! adds it when the event's window closes, for the events that survive contribution
+//! bounding ([`Contributor::add_event`]), or at once when units are not bounded. Adding is
+//! integer addition, so the order of events never matters.
+//!
+//! (Until issue 9's last round the contribution was computed as soon as a line was parsed,
+//! on `scrim replay`'s parse workers, and kept with the event until its window closed; at
+//! 256 bytes per retained event, copying it in and out of the window buffers cost more than
+//! computing it late, for survivors only.)
 //!
 //! Sensitivities and their derivations are in `plan` and `linear`.
 
@@ -34,16 +36,6 @@ const INLINE_VALUES: usize = 16;
 pub struct Contribution {
     groups: SmallVec<[u32; 6]>,
     values: SmallVec<[i128; INLINE_VALUES]>,
-}
-
-/// An event's contribution with every value in i64, inline for plans up to
-/// 16 coordinates: what a parse worker hands the engine, which adds it to
-/// the window on arrival (see `Engine::place`). Less than half the size of a
-/// [`Contribution`], which matters for handing events between threads.
-#[derive(Clone, Debug, PartialEq, Eq)]
-pub struct NarrowContribution {
-    groups: SmallVec<[u32; 6]>,
-    values: SmallVec<[i64; INLINE_VALUES]>,
 }
 
 /// How one statistic's group is found and where its components' values go.
@@ -116,12 +108,7 @@ impl Contributor {
     /// The contribution of `ev` (an event parsed with this plan's schema).
     pub fn contribution(&self, ev: &Event) -> Contribution {
         let mut groups = SmallVec::with_capacity(self.stats.len());
-        let mut values = if self.width <= INLINE_VALUES {
-            // Zeros taken whole, not element by element (issue 9).
-            SmallVec::from_buf_and_len([0; INLINE_VALUES], self.width)
-        } else {
-            SmallVec::from_elem(0, self.width)
-        };
+        let mut values = SmallVec::from_elem(0, self.width);
         self.fill(ev, &mut groups, &mut values);
         Contribution { groups, values }
     }
@@ -145,99 +132,27 @@ impl Contributor {
     /// `add(&contribution(ev), aggregate)`, without building the [`Contribution`] (the
     /// values stay on the stack for plans up to 16 coordinates).
     pub fn add_event(&self, ev: &Event, aggregate: &mut [Vec<Vec<i128>>]) {
-        self.event_values(ev, |groups, values| {
-            self.add_values::<_, false>(groups, values, aggregate);
-        });
-    }
-
-    /// [`Contributor::add_event`] when every value of `ev`'s contribution fits i64;
-    /// otherwise adds nothing and returns false.
-    pub fn add_event_if_narrow(&self, ev: &Event, aggregate: &mut [Vec<Vec<i128>>]) -> bool {
-        let mut narrow = false;
-        self.event_values(ev, |groups, values| {
-            narrow = values.iter().all(|v| i64::try_from(*v).is_ok());
-            if narrow {
-                self.add_values::<_, false>(groups, values, aggregate);
-            }
-        });
-        narrow
-    }
-
-    /// `ev`'s contribution as a [`NarrowContribution`], or `None` when a value is beyond
-    /// i64 (only on extremely fine grids).
-    pub fn narrow_contribution(&self, ev: &Event) -> Option<NarrowContribution> {
-        let mut narrow = None;
-        self.event_values(ev, |groups, values| {
-            let values: Option<SmallVec<[i64; INLINE_VALUES]>> = if values.len() <= INLINE_VALUES {
-                // Inline: filled whole, without a collect (issue 9).
-                let mut buf = [0i64; INLINE_VALUES];
-                let fits = buf
-                    .iter_mut()
-                    .zip(values)
-                    .all(|(to, v)| i64::try_from(*v).map(|v| *to = v).is_ok());
-                fits.then(|| SmallVec::from_buf_and_len(buf, values.len()))
-            } else {
-                values.iter().map(|v| i64::try_from(*v).ok()).collect()
-            };
-            narrow = values.map(|values| NarrowContribution {
-                groups: groups.iter().copied().collect(),
-                values,
-            });
-        });
-        narrow
-    }
-
-    /// Adds a [`NarrowContribution`] of this contributor's plan, as [`Contributor::add`].
-    pub fn add_narrow(&self, contribution: &NarrowContribution, aggregate: &mut [Vec<Vec<i128>>]) {
-        self.add_values::<_, false>(&contribution.groups, &contribution.values, aggregate);
-    }
-
-    /// Subtracts `ev`'s contribution from a window aggregate, saturating: the inverse of
-    /// [`Contributor::add_event`] as long as nothing saturates (see `Engine::place` for why
-    /// nothing does where the engine uses it).
-    pub fn subtract_event(&self, ev: &Event, aggregate: &mut [Vec<Vec<i128>>]) {
-        self.event_values(ev, |groups, values| {
-            self.add_values::<_, true>(groups, values, aggregate);
-        });
-    }
-
-    /// Calls `then` with `ev`'s groups and values, computed on the stack for plans up to
-    /// [`INLINE_VALUES`] coordinates.
-    fn event_values(&self, ev: &Event, then: impl FnOnce(&[u32], &[i128])) {
         if self.width > INLINE_VALUES {
-            let c = self.contribution(ev);
-            then(&c.groups, &c.values);
+            self.add(&self.contribution(ev), aggregate);
             return;
         }
         let mut groups = SmallVec::with_capacity(self.stats.len());
         let mut values = [0i128; INLINE_VALUES];
         self.fill(ev, &mut groups, &mut values[..self.width]);
-        then(&groups, &values[..self.width]);
+        self.add_values(&groups, &values[..self.width], aggregate);
     }
 
     /// Adds `contribution` to a window aggregate laid out as `[stat][component]` → flat
     /// `groups × dim` vectors (the engine's window aggregate). Saturating, like the moment
     /// accumulation: a sum can never wrap around (see `linear::accumulate`).
     pub fn add(&self, contribution: &Contribution, aggregate: &mut [Vec<Vec<i128>>]) {
-        self.add_values::<_, false>(&contribution.groups, &contribution.values, aggregate);
+        self.add_values(&contribution.groups, &contribution.values, aggregate);
     }
 
-    /// [`Contributor::add`] of groups and values (subtracted with `NEGATE`), with the
-    /// statistics' `(offset, dim)` spans in one small table (issue 9: walking the component
-    /// plans per event was a tenth of replay's instructions).
-    fn add_values<V: Copy + Into<i128>, const NEGATE: bool>(
-        &self,
-        groups: &[u32],
-        values: &[V],
-        aggregate: &mut [Vec<Vec<i128>>],
-    ) {
-        let step = |acc: i128, v: V| {
-            if NEGATE {
-                acc.saturating_sub(v.into())
-            } else {
-                acc.saturating_add(v.into())
-            }
-        };
+    /// [`Contributor::add`] of groups and values, with the statistics' `(offset, dim)`
+    /// spans in one small table (issue 9: walking the component plans per event was a
+    /// tenth of replay's instructions).
+    fn add_values(&self, groups: &[u32], values: &[i128], aggregate: &mut [Vec<Vec<i128>>]) {
         for ((spans, &group), per_component) in self.spans.iter().zip(groups).zip(aggregate) {
             if group == NOT_PART {
                 continue;
@@ -246,12 +161,12 @@ impl Contributor {
             for (&(offset, dim), slot) in spans.iter().zip(per_component.iter_mut()) {
                 if dim == 1 {
                     // Counts and sums: one value, no loop.
-                    slot[g] = step(slot[g], values[offset]);
+                    slot[g] = slot[g].saturating_add(values[offset]);
                     continue;
                 }
                 let to = &mut slot[g * dim..(g + 1) * dim];
                 for (acc, v) in to.iter_mut().zip(&values[offset..offset + dim]) {
-                    *acc = step(*acc, *v);
+                    *acc = acc.saturating_add(*v);
                 }
             }
         }

@@ -21,7 +21,7 @@ use smallvec::SmallVec;
 
 use crate::config::Config;
 use crate::engine::bound::Bounder;
-use crate::engine::contribution::{Contributor, NarrowContribution};
+use crate::engine::contribution::Contributor;
 use crate::engine::dd::Dd;
 use crate::engine::event::{Event, LineParser, LineShape, RejectReason, Rejection, Schema};
 use crate::engine::ledger::{BudgetError, EpochCharge, Ledger};
@@ -187,9 +187,8 @@ pub struct Engine {
     max_event_time: Option<Millis>,
     open: BTreeMap<i64, WindowAgg>,
     bounder: Option<Bounder<Retained>>,
-    /// Turns events into their exact per-statistic contributions; shared with
-    /// [`LineDecoder`]s so parse workers can do that work too.
-    contributor: Arc<Contributor>,
+    /// Turns events into their exact per-statistic contributions.
+    contributor: Contributor,
     epoch: Option<EpochState>,
     ledger: Ledger,
     halted: Option<BudgetError>,
@@ -229,7 +228,7 @@ impl Engine {
             max_line_bytes: config.input.max_line_bytes,
         };
         let parser = LineParser::new(schema).map_err(|e| EngineError::Schema(e.to_string()))?;
-        let contributor = Arc::new(Contributor::new(&plan));
+        let contributor = Contributor::new(&plan);
         let (bounder, lifetime, unit) = match &plan.level {
             PrivacyLevel::Event => (None, None, None),
             PrivacyLevel::Unit {
@@ -367,7 +366,6 @@ impl Engine {
         LineDecoder {
             parser: Arc::clone(&self.parser),
             hashers: self.hashers.clone(),
-            contributor: Arc::clone(&self.contributor),
         }
     }
 
@@ -389,21 +387,14 @@ impl Engine {
         let Some(w) = self.accept(ev.time) else {
             return;
         };
-        self.place(w, ev, None);
+        self.place(w, ev);
     }
 
     /// Handles a line prepared by [`LineDecoder::prepare`] of this engine's decoder:
     /// `handle_line(l)` is exactly `handle_prepared(decoder.prepare(l))`.
     pub fn handle_prepared(&mut self, prepared: Prepared) {
         match prepared.outcome {
-            Ok(PreparedEvent {
-                event,
-                contribution,
-            }) => {
-                if let Some(w) = self.accept(event.time) {
-                    self.place(w, event, contribution);
-                }
-            }
+            Ok(event) => self.handle_event(event),
             Err(rej) => self.reject(rej.reason.label()),
         }
     }
@@ -433,61 +424,21 @@ impl Engine {
         Some(w)
     }
 
-    /// Puts an accepted event into window `w`, with its contribution when a parse worker
-    /// computed it ([`LineDecoder::prepare`]), then closes what the watermark passed.
-    ///
-    /// Without bounding, the contribution goes into the window's aggregate at once. With
-    /// bounding, the event goes into the bounder; a contribution that came with it is
-    /// added to the window at once, and subtracted again (recomputed from the event) if
-    /// the bounder drops the event, at a compaction or when the window closes. Every other
-    /// survivor's contribution is computed and added when the window closes.
-    ///
-    /// Why this gives the same aggregate whichever thread computed what: the window's
-    /// aggregate is the exact sum of the survivors' contributions whose values all fit
-    /// i64, followed by saturating additions of the others (only on extremely fine grids)
-    /// in arrival order. Exact because only such narrow contributions are added before the
-    /// close's last step, and fewer than 2^64 events are offered to a window (the counters
-    /// are u64): every partial sum of them and of their subtractions stays within
-    /// 2^63·(2^64 − 1) < 2^127 in magnitude, so no saturating addition or subtraction
-    /// saturates, and integer addition is order-free. So parse workers can compute
-    /// contributions off the engine thread while the engine keeps only the 120-byte event
-    /// (issue 9), and `replay --threads 1` (which computes them at close, for survivors
-    /// only) releases the same bytes.
-    fn place(&mut self, w: i64, ev: Event, contribution: Option<NarrowContribution>) {
-        let (open, plan, contributor) = (&mut self.open, &self.plan, &self.contributor);
+    /// Puts an accepted event into window `w`: into the bounder when the engine bounds
+    /// units (its contribution is added when the window closes, if it survives), its
+    /// contribution straight into the window's aggregate otherwise. Then closes what the
+    /// watermark passed.
+    fn place(&mut self, w: i64, ev: Event) {
         match (&mut self.bounder, ev.unit) {
             (Some(b), Some(unit)) => {
-                let pre_added = contribution.is_some();
-                if let Some(c) = &contribution {
-                    let agg = open.entry(w).or_insert_with(|| WindowAgg::empty(plan));
-                    contributor.add_narrow(c, &mut agg.values);
-                }
                 let hashers = &self.hashers;
-                let retained = Retained {
-                    event: ev,
-                    pre_added,
-                };
-                self.counters.dropped_event_bound += b.offer_with(
-                    w,
-                    unit,
-                    retained,
-                    |r| bounding_priority(hashers, &r.event),
-                    |r| {
-                        if r.pre_added {
-                            let agg = open.entry(w).or_insert_with(|| WindowAgg::empty(plan));
-                            contributor.subtract_event(&r.event, &mut agg.values);
-                        }
-                    },
-                );
+                self.counters.dropped_event_bound +=
+                    b.offer(w, unit, ev, |e| bounding_priority(hashers, e));
             }
-            // Events without a unit reach a unit-level engine never (the parser rejects
-            // them), an event-level one always.
             _ => {
-                let agg = open.entry(w).or_insert_with(|| WindowAgg::empty(plan));
-                match &contribution {
-                    Some(c) => contributor.add_narrow(c, &mut agg.values),
-                    None => contributor.add_event(&ev, &mut agg.values),
-                }
+                let plan = &self.plan;
+                let agg = self.open.entry(w).or_insert_with(|| WindowAgg::empty(plan));
+                self.contributor.add_event(&ev, &mut agg.values);
             }
         }
         self.advance_watermark();
@@ -561,27 +512,12 @@ impl Engine {
             .unwrap_or_else(|| WindowAgg::empty(&self.plan));
         if let Some(b) = &mut self.bounder {
             let (contributor, hashers) = (&self.contributor, &self.hashers);
-            // Survivors with a contribution beyond i64: added after every other one (see
-            // `place`).
-            let mut late = Vec::new();
-            let values = &mut agg.values;
             let dropped = b.close_with(
                 w,
                 epoch,
-                |r| bounding_priority(hashers, &r.event),
-                |r, kept| match (kept, r.pre_added) {
-                    // A survivor not added on arrival: the guard adds its contribution if
-                    // narrow; a wide one waits in `late`.
-                    (true, false) if !contributor.add_event_if_narrow(&r.event, values) => {
-                        late.push(r.event.clone());
-                    }
-                    (false, true) => contributor.subtract_event(&r.event, values),
-                    _ => {}
-                },
+                |e| bounding_priority(hashers, e),
+                |e| contributor.add_event(e, &mut agg.values),
             );
-            for ev in &late {
-                contributor.add_event(ev, &mut agg.values);
-            }
             self.counters.dropped_event_bound += dropped.by_event_cap;
             self.counters.dropped_window_bound += dropped.by_window_cap;
         }
@@ -796,26 +732,14 @@ impl Engine {
 pub struct LineDecoder {
     parser: Arc<LineParser>,
     hashers: EventHashers,
-    /// The engine's contributor: [`LineDecoder::prepare`] computes each event's
-    /// contribution, so parse workers take that work off the engine thread.
-    contributor: Arc<Contributor>,
 }
 
 /// A line made ready off the engine thread by [`LineDecoder::prepare`], for
-/// [`Engine::handle_prepared`]: the parser's rejection, or the event (unit id replaced by
-/// its keyed hash) with its contribution to every statistic. Only `prepare` builds one, so
-/// the hash and the contribution are always the engine's own.
+/// [`Engine::handle_prepared`]: the parser's verdict, with the unit id already replaced by
+/// its keyed hash. Only `prepare` builds one, so the hash is always the engine's own.
 #[derive(Clone, Debug, PartialEq)]
 pub struct Prepared {
-    outcome: Result<PreparedEvent, Rejection>,
-}
-
-/// An accepted line, prepared: the event and its contribution (`None` if a value is
-/// beyond i64: the engine computes it at close, see `Engine::place`).
-#[derive(Clone, Debug, PartialEq)]
-struct PreparedEvent {
-    event: Event,
-    contribution: Option<NarrowContribution>,
+    outcome: Result<Event, Rejection>,
 }
 
 impl Prepared {
@@ -838,10 +762,9 @@ impl LineDecoder {
         decode_line(&self.parser, &self.hashers, line, shape)
     }
 
-    /// [`LineDecoder::decode`] plus, for an event, its contribution to every statistic:
-    /// pure functions of the line and the key, so parse workers compute them and the
-    /// engine thread only admits the event and adds integers. Use the result with the
-    /// engine that made this decoder.
+    /// [`LineDecoder::decode`], packaged for [`Engine::handle_prepared`]: a pure function
+    /// of the line and the key, so parse workers compute it and the engine thread only
+    /// admits the event. Use the result with the engine that made this decoder.
     pub fn prepare(&self, line: &[u8]) -> Prepared {
         self.prepare_with(line, &mut LineShape::new())
     }
@@ -849,11 +772,9 @@ impl LineDecoder {
     /// [`LineDecoder::prepare`] with a [`LineShape`] carried between calls (see
     /// [`LineDecoder::decode_with`]).
     pub fn prepare_with(&self, line: &[u8], shape: &mut LineShape) -> Prepared {
-        let outcome = self.decode_with(line, shape).map(|event| PreparedEvent {
-            contribution: self.contributor.narrow_contribution(&event),
-            event,
-        });
-        Prepared { outcome }
+        Prepared {
+            outcome: self.decode_with(line, shape),
+        }
     }
 
     /// The engine's parser, for callers that bring their own unit hash (benchmarks).
@@ -892,17 +813,13 @@ fn decode_line(
     parser.parse_with_shape(line, &|raw: &[u8]| hashers.unit.hash(raw), shape)
 }
 
-/// What the bounder keeps of an event: the event itself (120 bytes), and whether its
-/// contribution was added to the window on arrival (see `Engine::place`). The
-/// contribution is computed again only if the event is dropped; its priority only when its
-/// unit has more than `k` events in the window (see `bound`), which is rare. (Keeping the
-/// contribution and the priority bytes with the event took 256 bytes per event, and
-/// copying them in and out of the window buffers cost more than recomputing: issue 9.)
-#[derive(Clone, Debug)]
-pub struct Retained {
-    event: Event,
-    pre_added: bool,
-}
+/// What the bounder keeps of an event: the event itself (120 bytes). Its contribution is
+/// computed when its window closes, and only if it survives the bounds; its priority only
+/// when its unit has more than `k` events in the window (see `bound`), which is rare.
+/// (Keeping the precomputed contribution and priority bytes instead took 256 bytes per
+/// event, and copying them in and out of the window buffers cost more than computing them
+/// late: issue 9.)
+pub type Retained = Event;
 
 /// An event's priority for bottom-k bounding: [`priority_input`] hashed with the priority
 /// key. Only events with a unit are bounded.
@@ -1259,52 +1176,7 @@ mod tests {
     }
 
     fn config(mechanism: &str) -> Config {
-        Config::from_toml_str(&toml_of_test_config(mechanism)).expect("valid test config")
-    }
-
-    /// A unit-level config whose two statistics take events of different zones, with
-    /// weights a million apart, and `rho_per_epoch = rho`: on fine enough grids the heavy
-    /// statistic's values pass i64 while the light one's do not.
-    fn mixed_config(rho: &str) -> String {
-        format!(
-            r#"
-[input]
-time_field = "ts"
-unit_field = "card"
-[window]
-length = "1h"
-allowed_lateness = "0s"
-[privacy]
-rho_per_epoch = {rho}
-lifetime_rho = 1e40
-delta = 1e-9
-epoch_windows = 16
-max_events_per_window = 2
-max_windows_per_epoch = 3
-[[stats]]
-name = "heavy"
-kind = "linear"
-target = "y"
-features = ["v", "w"]
-feature_norm_bound = 20.0
-target_bound = 50.0
-group_by = ["zone"]
-weight = 1e6
-[stats.keys]
-zone = ["a"]
-[[stats]]
-name = "light"
-kind = "count"
-group_by = ["zone"]
-[stats.keys]
-zone = ["b", "c"]
-"#
-        )
-    }
-
-    /// The text of [`config`].
-    fn toml_of_test_config(mechanism: &str) -> String {
-        format!(
+        Config::from_toml_str(&format!(
             r#"
 [input]
 time_field = "ts"
@@ -1370,7 +1242,8 @@ feature_norm_bound = 20.0
 feature_ranges = [[2.0, 12.0], [1.0, 9.0]]
 target_bound = 30.0
 "#
-        )
+        ))
+        .expect("valid test config")
     }
 
     /// A random feed: `units` units, a heavy unit 0 far over both bounds.
@@ -1596,116 +1469,5 @@ target_bound = 30.0
                 }
             }
         }
-    }
-
-    /// Everything an engine produced: exact leaves, counters and release records.
-    type Outcome = (Vec<Vec<Vec<Vec<Vec<i128>>>>>, Counters, Vec<Release>);
-
-    /// Runs `lines` through an engine, each by `handle_line` or, as `replay`'s parse
-    /// workers do, by `handle_prepared(decoder.prepare(line))`.
-    fn run_engine(cfg: &Config, lines: &[String], prepared: bool) -> Outcome {
-        let mut e = Engine::new(
-            cfg,
-            NoiseKey::from_seed(1),
-            EngineOptions {
-                seeded: true,
-                danger_keep_truth: true,
-            },
-        )
-        .expect("engine");
-        let decoder = e.line_decoder();
-        for l in lines {
-            if prepared {
-                e.handle_prepared(decoder.prepare(l.as_bytes()));
-            } else {
-                e.handle_line(l.as_bytes());
-            }
-        }
-        e.finish();
-        let truth = e
-            .epoch
-            .as_ref()
-            .expect("an epoch")
-            .series
-            .iter()
-            .map(|s| s.truth.clone().expect("truth kept"))
-            .collect();
-        let releases = std::iter::from_fn(|| e.poll_release()).collect();
-        (truth, e.counters().clone(), releases)
-    }
-
-    /// Contributions computed by the parse workers are added on arrival and subtracted
-    /// when the bounder drops their event; `handle_line` computes them at close for the
-    /// survivors only. Both must give the same exact aggregates, counters and releases
-    /// (`Engine::place`). The stream has 6,000 events an hour from 1,500 units (four
-    /// each: over the per-window bound of 2, and over the 3 windows per epoch from the
-    /// fourth hour), so windows compact their buffers (past 4,096 events) as well as drop at
-    /// close. On grids fine enough to put values beyond i64 (a huge budget), such
-    /// contributions are added at close on both paths: all of them, or those of one
-    /// statistic next to narrow ones of another.
-    #[test]
-    fn prepared_lines_give_the_same_aggregates_as_lines() {
-        let mut lines = Vec::new();
-        for hour in 0..6i64 {
-            for i in 0..6_000u32 {
-                let ts = 1_772_409_600_000 + hour * 3_600_000 + i64::from(i) * 500;
-                let u = i % 1_500;
-                let scale = [0.001, 0.01, 10.0][(i % 3) as usize];
-                let v = f64::from(i % 97) / 9.7 * scale;
-                let w = f64::from(i % 13) / 1.3 * scale;
-                let y = 2.0 * v + w;
-                let zone = ["a", "b", "c"][(i % 3) as usize];
-                lines.push(format!(
-                    r#"{{"ts":{ts},"card":"u{u}","zone":"{zone}","v":{v},"w":{w},"y":{y}}}"#
-                ));
-            }
-        }
-        let normal = config("tree");
-        let all_wide = Config::from_toml_str(
-            &toml_of_test_config("tree")
-                .replace("rho_per_epoch = 1.0", "rho_per_epoch = 1e30")
-                .replace("lifetime_rho = 4.0", "lifetime_rho = 4e30"),
-        )
-        .expect("fine config");
-        let mixed = Config::from_toml_str(&mixed_config("1e24")).expect("mixed config");
-        for (name, cfg) in [
-            ("normal grids", &normal),
-            ("every contribution beyond i64", &all_wide),
-            ("some contributions beyond i64", &mixed),
-        ] {
-            let by_line = run_engine(cfg, &lines, false);
-            let by_prepared = run_engine(cfg, &lines, true);
-            assert!(
-                by_line.1.dropped_event_bound > 0 && by_line.1.dropped_window_bound > 0,
-                "{name}: both bounds drop events: {:?}",
-                by_line.1
-            );
-            assert_eq!(by_line.0, by_prepared.0, "{name}: exact aggregates");
-            assert_eq!(by_line.1, by_prepared.1, "{name}: counters");
-            assert_eq!(by_line.2, by_prepared.2, "{name}: releases");
-        }
-        // Which contributions are narrow, for the first three lines (zones a, b, c).
-        let narrow = |cfg: &Config| -> Vec<bool> {
-            let engine = Engine::new(
-                cfg,
-                NoiseKey::from_seed(1),
-                EngineOptions {
-                    seeded: true,
-                    danger_keep_truth: false,
-                },
-            )
-            .expect("engine");
-            let decoder = engine.line_decoder();
-            lines[..3]
-                .iter()
-                .map(|l| match decoder.prepare(l.as_bytes()).outcome {
-                    Ok(p) => p.contribution.is_some(),
-                    Err(rej) => panic!("test line rejected: {rej:?}"),
-                })
-                .collect()
-        };
-        assert_eq!(narrow(&normal), [true; 3]);
-        assert_eq!(narrow(&all_wide), [false; 3]);
-        assert_eq!(narrow(&mixed), [false, true, true]);
     }
 }

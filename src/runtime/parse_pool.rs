@@ -3,8 +3,8 @@
 //! cannot depend on the number of threads.
 //!
 //! # Why this is deterministic
-//! Preparing a line ([`LineDecoder::prepare`]: parsing, the keyed unit hash and the
-//! event's contribution to every statistic) is a pure function of the line's bytes and the engine's key: it reads
+//! Preparing a line ([`LineDecoder::prepare`]: parsing and the keyed unit hash) is a pure
+//! function of the line's bytes and the engine's key: it reads
 //! no state the engine changes. The input is cut into chunks of
 //! whole lines, numbered in reading order; each chunk's verdicts come back in line order
 //! and the caller consumes chunk `k` only after chunk `k - 1`. The engine therefore sees
@@ -40,7 +40,7 @@ pub const CHUNK_BYTES: usize = 64 * 1024;
 /// waiting for it; 16 chunks are about 1 MiB of input.
 pub const CHUNKS_IN_FLIGHT_PER_THREAD: u64 = 16;
 
-/// A line ready for the engine: the parser's verdict (unit id hashed) and contribution.
+/// A line ready for the engine: the parser's verdict, unit id hashed.
 type Verdict = Prepared;
 
 /// Whole lines read from the input, with the position of the chunk in reading order.
