@@ -7,10 +7,10 @@
 //! bounding ([`Contributor::add_event`]), or at once when units are not bounded. Adding is
 //! integer addition, so the order of events never matters.
 //!
-//! (Until issue 9's last round the contribution was computed as soon as a line was parsed,
-//! on `scrim replay`'s parse workers, and kept with the event until its window closed; at
-//! 256 bytes per retained event, copying it in and out of the window buffers cost more than
-//! computing it late, for survivors only.)
+//! (It used to be computed as soon as a line was parsed, on `scrim replay`'s parse
+//! workers, and kept with the event until its window closed; at 256 bytes per retained
+//! event, copying it in and out of the window buffers cost more than computing it late,
+//! for survivors only: issue 9.)
 //!
 //! Sensitivities and their derivations are in `plan` and `linear`.
 
