@@ -197,6 +197,7 @@ fn pump_parallel<R: Read>(
     mut progress: Option<&mut ReplayProgress>,
 ) -> std::io::Result<(u64, u64)> {
     let decoder = engine.line_decoder();
+    engine.set_close_threads(threads);
     let mut n_releases = 0u64;
     let n_lines =
         crate::runtime::parse_pool::decode_in_order(input, &decoder, threads, |prepared| {

@@ -473,15 +473,55 @@ impl<T> Bounder<T> {
         priority: impl Fn(&T) -> u64,
         mut keep: impl FnMut(&T),
     ) -> Dropped {
+        let Some((mut window, keep_seq, dropped)) = self.decide(window_idx, epoch, priority) else {
+            return Dropped::default();
+        };
+        // Each event is dropped right after it is read, while it is in cache: dropping them
+        // all afterwards read every event from memory a second time (issue 9).
+        for (event, kept) in window.events.drain(..).zip(&keep_seq) {
+            if *kept {
+                keep(&event);
+            }
+        }
+        self.recycle(window, dropped);
+        dropped
+    }
+
+    /// [`Bounder::close_with`] that hands over all the window's events at once, with a
+    /// flag per event (`kept[i]`: `events[i]` survives both bounds), so that the caller can
+    /// share the survivors among threads (issue 9). Returns the numbers dropped by each
+    /// bound.
+    pub fn close_batch(
+        &mut self,
+        window_idx: i64,
+        epoch: u64,
+        priority: impl Fn(&T) -> u64,
+        batch: impl FnOnce(&[T], &[bool]),
+    ) -> Dropped {
+        let Some((window, keep_seq, dropped)) = self.decide(window_idx, epoch, priority) else {
+            return Dropped::default();
+        };
+        batch(&window.events, &keep_seq);
+        self.recycle(window, dropped);
+        dropped
+    }
+
+    /// Applies both bounds to window `window_idx` (removed from the open windows): its
+    /// buffer, a flag per event in arrival order (`true`: kept) and the numbers dropped.
+    /// `None` when the window holds no event.
+    fn decide(
+        &mut self,
+        window_idx: i64,
+        epoch: u64,
+        priority: impl Fn(&T) -> u64,
+    ) -> Option<(WindowBuffer<T>, Vec<bool>, Dropped)> {
         if self.epoch != Some(epoch) {
             // Dropped, not cleared: the memory goes back with the old epoch's units.
             self.windows_used = EpochTable::default();
             self.epoch = Some(epoch);
         }
         // Windows before this one can no longer receive events (they are closed too).
-        let Some(mut window) = self.open.remove(&window_idx) else {
-            return Dropped::default();
-        };
+        let mut window = self.open.remove(&window_idx)?;
         let (k, m) = (self.max_events_per_window, self.max_windows_per_epoch);
         let windows_used = &mut self.windows_used;
         let mut dropped = Dropped::default();
@@ -508,20 +548,17 @@ impl<T> Bounder<T> {
                 dropped.by_window_cap += 1;
             }
         });
-        // Each event is dropped right after it is read, while it is in cache: dropping them
-        // all afterwards read every event from memory a second time (issue 9).
-        let survivors = window.events.len() - dropped.by_event_cap as usize;
-        for (event, kept) in window.events.drain(..).zip(&keep_seq) {
-            if *kept {
-                keep(&event);
-            }
-        }
+        Some((window, keep_seq, dropped))
+    }
+
+    /// Empties a closed window's buffer and keeps it for the next window.
+    fn recycle(&mut self, mut window: WindowBuffer<T>, dropped: Dropped) {
         // The next window starts compacting at twice this one's survivors of the per-window
         // bound: steady traffic then needs no compaction before its close, and the buffer
         // stays within twice `k` per unit of a recent window (plus the floor).
+        let survivors = window.keys.len() - dropped.by_event_cap as usize;
         window.clear((2 * survivors).max(self.compact_floor));
         self.spare = Some(window);
-        dropped
     }
 
     /// Units with a window counted in the current epoch.
