@@ -141,7 +141,7 @@ fn unit_table(engine: &Engine) -> Option<(usize, usize)> {
 /// Feeds every line of `input` to `engine`, handing releases to `sink` as they appear.
 /// With `threads > 1` lines are parsed on that many threads
 /// ([`crate::runtime::parse_pool`]); the releases are the same for any `threads`.
-pub fn pump<R: Read>(
+pub fn pump<R: Read + Send>(
     engine: &mut Engine,
     input: R,
     sink: &mut dyn ReleaseSink,
@@ -151,7 +151,7 @@ pub fn pump<R: Read>(
 }
 
 /// [`pump`] that also advances a progress bar (see [`ReplayProgress`] for its cost).
-pub fn pump_with_progress<R: Read>(
+pub fn pump_with_progress<R: Read + Send>(
     engine: &mut Engine,
     input: R,
     sink: &mut dyn ReleaseSink,
@@ -189,7 +189,7 @@ pub fn pump_with_progress<R: Read>(
 }
 
 /// [`pump`] with parsing on `threads` threads and the engine on the calling thread.
-fn pump_parallel<R: Read>(
+fn pump_parallel<R: Read + Send>(
     engine: &mut Engine,
     input: R,
     sink: &mut dyn ReleaseSink,
@@ -256,7 +256,8 @@ pub fn replay(
             let mut bar = ReplayProgress::on_terminal(None);
             let r = pump_with_progress(
                 &mut engine,
-                std::io::stdin().lock(),
+                // `Stdin`, not its lock: a parse worker may be the thread that reads.
+                std::io::stdin(),
                 &mut sink,
                 threads,
                 bar.as_mut(),
