@@ -115,32 +115,41 @@ fn window_close(c: &mut Criterion) {
         .warm_up_time(Duration::from_millis(500))
         .measurement_time(Duration::from_secs(2));
 
-    g.bench_function("steady", |b| {
-        let mut engine = new_engine();
-        fill(&mut engine, &window_lines(0));
-        let _ = close(&mut engine, 0); // the epoch's first window, measured below
-        let mut window_idx = 1i64;
-        b.iter_custom(|iters| {
-            let mut total = Duration::ZERO;
-            for _ in 0..iters {
-                if window_idx >= i64::from(EPOCH_WINDOWS) {
-                    // Stay inside one epoch (never reached with these run lengths).
-                    engine = new_engine();
-                    window_idx = 0;
+    for threads in [1usize, 2] {
+        let name = if threads == 1 {
+            "steady".to_string()
+        } else {
+            format!("steady/{threads}_threads")
+        };
+        g.bench_function(name, |b| {
+            let mut engine = new_engine();
+            engine.set_close_threads(threads);
+            fill(&mut engine, &window_lines(0));
+            let _ = close(&mut engine, 0); // the epoch's first window, measured below
+            let mut window_idx = 1i64;
+            b.iter_custom(|iters| {
+                let mut total = Duration::ZERO;
+                for _ in 0..iters {
+                    if window_idx >= i64::from(EPOCH_WINDOWS) {
+                        // Stay inside one epoch (never reached with these run lengths).
+                        engine = new_engine();
+                        engine.set_close_threads(threads);
+                        window_idx = 0;
+                    }
+                    fill(&mut engine, &window_lines(window_idx));
+                    let (elapsed, n_records) = close(&mut engine, window_idx);
+                    assert_eq!(
+                        n_records,
+                        2 * N_GROUPS,
+                        "window and epoch_to_date per group"
+                    );
+                    total += elapsed;
+                    window_idx += 1;
                 }
-                fill(&mut engine, &window_lines(window_idx));
-                let (elapsed, n_records) = close(&mut engine, window_idx);
-                assert_eq!(
-                    n_records,
-                    2 * N_GROUPS,
-                    "window and epoch_to_date per group"
-                );
-                total += elapsed;
-                window_idx += 1;
-            }
-            total
-        })
-    });
+                total
+            })
+        });
+    }
 
     g.bench_function("first_of_epoch", |b| {
         let lines = window_lines(0);

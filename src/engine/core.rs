@@ -174,8 +174,8 @@ pub struct Engine {
     /// `key`'s hashers for unit ids and bounding priorities, derived once.
     hashers: EventHashers,
     opts: EngineOptions,
-    /// Threads that share the survivors' contributions at a window close
-    /// ([`Contributor::add_kept`]); 1 = the calling thread alone.
+    /// Threads that share a window close's work (see [`Engine::set_close_threads`]);
+    /// 1 = the calling thread alone.
     close_threads: usize,
     window_ms: i64,
     lateness_ms: i64,
@@ -294,9 +294,10 @@ impl Engine {
         })
     }
 
-    /// Lets up to `threads` threads (the calling one included) share the contributions of
-    /// a closing window's survivors ([`Contributor::add_kept`]): `scrim replay --threads`.
-    /// Releases do not depend on it.
+    /// Lets up to `threads` threads (the calling one included) share a window close's
+    /// work: the contributions of the survivors ([`Contributor::add_kept`]) and each group's
+    /// leaf and node noise (`for_blocks`). `scrim replay --threads` and the daemon (one per
+    /// core) set it. Releases do not depend on it.
     pub fn set_close_threads(&mut self, threads: usize) {
         self.close_threads = threads.max(1);
     }
@@ -613,20 +614,29 @@ impl Engine {
         };
         // 1. Every node that completes with this leaf gets its noise (drawn once, by identity).
         for (si, s) in self.plan.stats.iter().enumerate() {
+            let series = &mut state.series[si];
             for (ci, c) in s.components.iter().enumerate() {
-                for g in 0..s.groups.len() {
-                    let x = &agg.values[si][ci][g * c.dim..(g + 1) * c.dim];
-                    let mut nz = KeyedNoise {
-                        key: &self.key,
-                        stat: &s.name,
-                        component: ci as u8,
-                        group: g as u32,
-                        epoch,
-                        sigma2: c.sigma2,
-                    };
-                    state.series[si].mechs[ci][g].push_leaf(x, &mut nz);
-                    if let Some(truth) = &mut state.series[si].truth {
-                        truth[ci][g].push(x.to_vec());
+                let values = &agg.values[si][ci];
+                let key = &self.key;
+                // Groups `first..` of this component take their leaf.
+                let push = |first: usize, mechs: &mut [Box<dyn ContinualMechanism>]| {
+                    for (k, mech) in mechs.iter_mut().enumerate() {
+                        let g = first + k;
+                        let mut nz = KeyedNoise {
+                            key,
+                            stat: &s.name,
+                            component: ci as u8,
+                            group: g as u32,
+                            epoch,
+                            sigma2: c.sigma2,
+                        };
+                        mech.push_leaf(&values[g * c.dim..(g + 1) * c.dim], &mut nz);
+                    }
+                };
+                for_blocks(&mut series.mechs[ci], GROUP_BLOCK, self.close_threads, push);
+                if let Some(truth) = &mut series.truth {
+                    for (g, leaves) in truth[ci].iter_mut().enumerate() {
+                        leaves.push(values[g * c.dim..(g + 1) * c.dim].to_vec());
                     }
                 }
             }
@@ -734,6 +744,58 @@ impl Engine {
             }
         }
     }
+}
+
+/// Groups per block of [`for_blocks`] in a window close: about a millisecond of work.
+const GROUP_BLOCK: usize = 1024;
+
+/// Calls `each(first, block)` for consecutive blocks of `block_len` items (`first`: the index
+/// of the block's first item), on up to `threads` threads, the calling thread included,
+/// when there are at least two blocks; on the calling thread alone otherwise. For per-group
+/// work whose result does not depend on the order or the thread: every node's noise is a
+/// function of its identity (see `KeyedNoise`), and each record of its group's estimates
+/// and its place in the order (issue 9: closing a window of 100,000 groups was mostly
+/// drawing their noise and building their records). Blocks are taken from a shared
+/// iterator, so a thread the OS deschedules holds back one block at most.
+///
+/// # Panics
+/// Re-raises a helper thread's panic.
+fn for_blocks<T: Send>(
+    items: &mut [T],
+    block_len: usize,
+    threads: usize,
+    each: impl Fn(usize, &mut [T]) + Sync,
+) {
+    let block_len = block_len.max(1);
+    let n_blocks = items.len().div_ceil(block_len);
+    let threads = threads.min(n_blocks);
+    if threads <= 1 {
+        each(0, items);
+        return;
+    }
+    let blocks = std::sync::Mutex::new(items.chunks_mut(block_len).enumerate());
+    let work = || {
+        loop {
+            // A poisoned lock means another taker panicked; its panic is re-raised below.
+            let next = blocks
+                .lock()
+                .unwrap_or_else(std::sync::PoisonError::into_inner)
+                .next();
+            let Some((b, chunk)) = next else {
+                return;
+            };
+            each(b * block_len, chunk);
+        }
+    };
+    std::thread::scope(|scope| {
+        let helpers: Vec<_> = (1..threads).map(|_| scope.spawn(work)).collect();
+        work();
+        for helper in helpers {
+            helper
+                .join()
+                .unwrap_or_else(|panic| std::panic::resume_unwind(panic));
+        }
+    });
 }
 
 /// The engine's line parser with its keyed unit hash, detached from the engine so that
@@ -1534,5 +1596,94 @@ target_bound = 30.0
             "units u and u + 5000 share a card: 4 events each"
         );
         assert_eq!(run(3), (one, dropped));
+    }
+
+    /// `for_blocks` hands every item to `each` exactly once, with its index in the slice,
+    /// for any thread count, block length and item count (including an empty slice).
+    #[test]
+    fn for_blocks_visits_every_item_once_with_its_index() {
+        for n in [0usize, 1, 5, 1023, 1024, 1025, 5000] {
+            for block_len in [1usize, 7, 1024] {
+                for threads in [1usize, 2, 4] {
+                    let mut items: Vec<(usize, u32)> = (0..n).map(|i| (i, 0)).collect();
+                    for_blocks(&mut items, block_len, threads, |first, block| {
+                        for (k, (i, seen)) in block.iter_mut().enumerate() {
+                            assert_eq!(*i, first + k, "index of a block's item");
+                            *seen += 1;
+                        }
+                    });
+                    assert!(
+                        items.iter().all(|(_, seen)| *seen == 1),
+                        "n {n}, block {block_len}, threads {threads}"
+                    );
+                }
+            }
+        }
+    }
+
+    /// With 2,500 groups (three blocks of `GROUP_BLOCK`), closing windows on 1 or 3 threads
+    /// draws the same noise and builds the same records: noise is keyed by node identity,
+    /// whichever thread draws it.
+    #[test]
+    fn close_threads_do_not_change_many_group_releases() {
+        let keys: Vec<String> = (0..2_500).map(|i| format!("\"k{i}\"")).collect();
+        let cfg = Config::from_toml_str(&format!(
+            r#"
+[input]
+time_field = "ts"
+[window]
+length = "1h"
+allowed_lateness = "0s"
+[privacy]
+rho_per_epoch = 1.0
+delta = 1e-9
+epoch_windows = 8
+[[stats]]
+name = "c"
+kind = "count"
+group_by = ["k"]
+trailing = [2]
+[stats.keys]
+k = [{}]
+"#,
+            keys.join(", ")
+        ))
+        .expect("valid config");
+        let lines: Vec<String> = (0..3i64)
+            .flat_map(|w| {
+                (0..2_500).step_by(3).map(move |g| {
+                    let ts = 1_772_409_600_000 + w * 3_600_000 + (g % 3_600) * 1000;
+                    format!(r#"{{"ts":{ts},"k":"k{g}"}}"#)
+                })
+            })
+            .collect();
+        let run = |threads: usize| {
+            let mut e = Engine::new(
+                &cfg,
+                NoiseKey::from_seed(3),
+                EngineOptions {
+                    seeded: true,
+                    danger_keep_truth: false,
+                },
+            )
+            .expect("engine");
+            e.set_close_threads(threads);
+            for l in &lines {
+                e.handle_line(l.as_bytes());
+            }
+            e.finish();
+            let mut out = Vec::new();
+            while let Some(r) = e.poll_release() {
+                out.push(format!("{r:?}"));
+            }
+            out
+        };
+        let one = run(1);
+        assert_eq!(
+            one.len(),
+            3 * 3 * 2_500,
+            "3 windows; window, trailing and epoch-to-date scopes; 2,500 groups"
+        );
+        assert_eq!(run(3), one);
     }
 }
