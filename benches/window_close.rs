@@ -9,7 +9,9 @@
 //! Run: `cargo bench --bench window_close`
 //!
 //! Two cases: `steady` closes later windows of a running epoch; `first_of_epoch` closes the
-//! first window, which also charges the budget and builds the 100,000 mechanisms.
+//! first window, which also charges the budget and builds the 100,000 mechanisms. Each runs
+//! on one thread and, as `…/2_threads`, with `Engine::set_close_threads(2)` (the daemon
+//! sets one thread per core; the groups' noise is then drawn on both).
 
 use std::hint::black_box;
 use std::time::{Duration, Instant};
@@ -151,20 +153,28 @@ fn window_close(c: &mut Criterion) {
         });
     }
 
-    g.bench_function("first_of_epoch", |b| {
-        let lines = window_lines(0);
-        b.iter_custom(|iters| {
-            let mut total = Duration::ZERO;
-            for _ in 0..iters {
-                let mut engine = new_engine();
-                fill(&mut engine, &lines);
-                let (elapsed, n_records) = close(&mut engine, 0);
-                assert_eq!(n_records, 2 * N_GROUPS);
-                total += elapsed;
-            }
-            total
-        })
-    });
+    for threads in [1usize, 2] {
+        let name = if threads == 1 {
+            "first_of_epoch".to_string()
+        } else {
+            format!("first_of_epoch/{threads}_threads")
+        };
+        g.bench_function(name, |b| {
+            let lines = window_lines(0);
+            b.iter_custom(|iters| {
+                let mut total = Duration::ZERO;
+                for _ in 0..iters {
+                    let mut engine = new_engine();
+                    engine.set_close_threads(threads);
+                    fill(&mut engine, &lines);
+                    let (elapsed, n_records) = close(&mut engine, 0);
+                    assert_eq!(n_records, 2 * N_GROUPS);
+                    total += elapsed;
+                }
+                total
+            })
+        });
+    }
     g.finish();
 }
 
