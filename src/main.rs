@@ -53,8 +53,8 @@ enum Command {
         /// Reproducible noise from this seed; releases are marked `seeded`.
         #[arg(long)]
         seed: Option<u64>,
-        /// Threads that parse lines (the engine runs on one of them); the releases are
-        /// the same for any number. Not used with --state.
+        /// Threads that parse lines and share each window close (the engine runs on one
+        /// of them); the releases are the same for any number. Not used with --state.
         #[arg(long, default_value_t = 1, value_parser = clap::value_parser!(u16).range(1..=256))]
         threads: u16,
         /// Input file, or `-` for standard input.
