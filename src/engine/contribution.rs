@@ -443,16 +443,7 @@ mod tests {
         assert_eq!(offset, values.len());
 
         // Adding to an aggregate puts exactly these values at the group's slot.
-        let mut agg: Vec<Vec<Vec<i128>>> = plan
-            .stats
-            .iter()
-            .map(|s| {
-                s.components
-                    .iter()
-                    .map(|comp| vec![0i128; s.groups.len() * comp.dim])
-                    .collect()
-            })
-            .collect();
+        let mut agg = zero_aggregate(&plan);
         contributor.add(&c, &mut agg);
         contributor.add(&c, &mut agg);
         let zone = plan

@@ -1545,6 +1545,30 @@ target_bound = 30.0
         }
     }
 
+    /// Every record (as its `Debug` text, truth included) and the counters of a seeded
+    /// engine that closes windows on `threads` threads.
+    fn run_on_threads(cfg: &Config, lines: &[String], threads: usize) -> (Vec<String>, Counters) {
+        let mut e = Engine::new(
+            cfg,
+            NoiseKey::from_seed(1),
+            EngineOptions {
+                seeded: true,
+                danger_keep_truth: true,
+            },
+        )
+        .expect("engine");
+        e.set_close_threads(threads);
+        for l in lines {
+            e.handle_line(l.as_bytes());
+        }
+        e.finish();
+        let mut out = Vec::new();
+        while let Some(r) = e.poll_release() {
+            out.push(format!("{r:?}"));
+        }
+        (out, e.counters().clone())
+    }
+
     /// Sharing the survivors' contributions among threads at a close
     /// (`set_close_threads`) changes no release: windows of 20,000 buffered events (half
     /// over the per-window bound), well above `add_kept`'s threshold, closed with 1 and 3
@@ -1568,26 +1592,10 @@ target_bound = 30.0
                 }
             }
         }
+        let cfg = config("tree");
         let run = |threads: usize| {
-            let mut e = Engine::new(
-                &config("tree"),
-                NoiseKey::from_seed(1),
-                EngineOptions {
-                    seeded: true,
-                    danger_keep_truth: true,
-                },
-            )
-            .expect("engine");
-            e.set_close_threads(threads);
-            for l in &lines {
-                e.handle_line(l.as_bytes());
-            }
-            e.finish();
-            let mut out = Vec::new();
-            while let Some(r) = e.poll_release() {
-                out.push(format!("{r:?}"));
-            }
-            (out, e.counters().dropped_event_bound)
+            let (records, counters) = run_on_threads(&cfg, &lines, threads);
+            (records, counters.dropped_event_bound)
         };
         let (one, dropped) = run(1);
         assert!(one.len() >= 3, "{} records", one.len());
@@ -1657,27 +1665,7 @@ k = [{}]
                 })
             })
             .collect();
-        let run = |threads: usize| {
-            let mut e = Engine::new(
-                &cfg,
-                NoiseKey::from_seed(3),
-                EngineOptions {
-                    seeded: true,
-                    danger_keep_truth: false,
-                },
-            )
-            .expect("engine");
-            e.set_close_threads(threads);
-            for l in &lines {
-                e.handle_line(l.as_bytes());
-            }
-            e.finish();
-            let mut out = Vec::new();
-            while let Some(r) = e.poll_release() {
-                out.push(format!("{r:?}"));
-            }
-            out
-        };
+        let run = |threads: usize| run_on_threads(&cfg, &lines, threads).0;
         let one = run(1);
         assert_eq!(
             one.len(),
