@@ -198,9 +198,17 @@ fn pump_parallel<R: Read + Send>(
 ) -> std::io::Result<(u64, u64)> {
     let decoder = engine.line_decoder();
     engine.set_close_threads(threads);
+    // While lines come in, the parse workers help with window closes between chunks; after
+    // the input ends (the workers are gone) closes start their own helper threads.
+    let assists = std::sync::Arc::new(crate::runtime::parse_pool::Assists::default());
+    engine.set_help_board(Some(assists.clone()));
     let mut n_releases = 0u64;
-    let n_lines =
-        crate::runtime::parse_pool::decode_in_order(input, &decoder, threads, |prepared| {
+    let decoded = crate::runtime::parse_pool::decode_in_order(
+        input,
+        &decoder,
+        threads,
+        &assists,
+        |prepared| {
             engine.handle_prepared(prepared);
             while let Some(r) = engine.poll_release() {
                 sink.publish(&r)?;
@@ -212,7 +220,10 @@ fn pump_parallel<R: Read + Send>(
                 p.draw(engine.counters().accepted);
             }
             Ok(())
-        })?;
+        },
+    );
+    engine.set_help_board(None);
+    let n_lines = decoded?;
     engine.finish();
     while let Some(r) = engine.poll_release() {
         sink.publish(&r)?;

@@ -361,6 +361,9 @@ pub struct Bounder<T = Event> {
     /// The last closed window's buffers, emptied, for the next window to open: steady
     /// traffic then neither regrows them from empty nor touches fresh pages every window.
     spare: Option<WindowBuffer<T>>,
+    /// An event vector handed back after [`Bounder::close_take`], for the next window
+    /// that opens without one.
+    spare_events: Option<Vec<T>>,
     epoch: Option<u64>,
     /// Smallest buffer that triggers a compaction: [`MIN_COMPACT_AT`], smaller in tests so
     /// that compactions happen.
@@ -389,6 +392,10 @@ pub struct Dropped {
     pub by_window_cap: u64,
 }
 
+/// A closed window's events and a keep flag per event (`true`: survives both bounds), as
+/// [`Bounder::close_take`] hands them over.
+pub type Taken<T> = (Vec<T>, Vec<bool>);
+
 impl<T> Bounder<T> {
     /// A bounder keeping `k` events per unit per window and `m` windows per unit per epoch.
     pub fn new(max_events_per_window: u32, max_windows_per_epoch: u32) -> Bounder<T> {
@@ -398,6 +405,7 @@ impl<T> Bounder<T> {
             open: BTreeMap::new(),
             windows_used: EpochTable::default(),
             spare: None,
+            spare_events: None,
             epoch: None,
             compact_floor: MIN_COMPACT_AT,
         }
@@ -425,11 +433,17 @@ impl<T> Bounder<T> {
         event: T,
         priority: impl Fn(&T) -> u64,
     ) -> u64 {
-        let (spare, floor) = (&mut self.spare, self.compact_floor);
-        let window = self
-            .open
-            .entry(window_idx)
-            .or_insert_with(|| spare.take().unwrap_or_else(|| WindowBuffer::new(floor)));
+        let (spare, spare_events, floor) =
+            (&mut self.spare, &mut self.spare_events, self.compact_floor);
+        let window = self.open.entry(window_idx).or_insert_with(|| {
+            let mut window = spare.take().unwrap_or_else(|| WindowBuffer::new(floor));
+            if window.events.capacity() == 0
+                && let Some(events) = spare_events.take()
+            {
+                window.events = events;
+            }
+            window
+        });
         // Sequence numbers are u32: a buffer that cannot number another event (2^32 events
         // held in memory, unreachable in practice) drops it rather than mis-order it.
         let Ok(seq) = u32::try_from(window.events.len()) else {
@@ -508,6 +522,36 @@ impl<T> Bounder<T> {
         batch(&window.events, &keep_seq);
         self.recycle(window, dropped);
         dropped
+    }
+
+    /// [`Bounder::close_batch`] that hands over the window's events and flags by value, so
+    /// that another thread can sum the survivors while this one goes on (`None` when the
+    /// window holds no event). Give the vector back with [`Bounder::recycle_events`].
+    pub fn close_take(
+        &mut self,
+        window_idx: i64,
+        epoch: u64,
+        priority: impl Fn(&T) -> u64,
+    ) -> (Dropped, Option<Taken<T>>) {
+        let Some((mut window, keep_seq, dropped)) = self.decide(window_idx, epoch, priority) else {
+            return (Dropped::default(), None);
+        };
+        let events = std::mem::take(&mut window.events);
+        self.recycle(window, dropped);
+        (dropped, Some((events, keep_seq)))
+    }
+
+    /// Takes back an event vector from [`Bounder::close_take`] (emptied here), so that a
+    /// window opened later need not grow a new one.
+    pub fn recycle_events(&mut self, mut events: Vec<T>) {
+        events.clear();
+        if self
+            .spare_events
+            .as_ref()
+            .is_none_or(|kept| kept.capacity() < events.capacity())
+        {
+            self.spare_events = Some(events);
+        }
     }
 
     /// Applies both bounds to window `window_idx` (removed from the open windows): its

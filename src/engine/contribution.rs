@@ -15,6 +15,7 @@
 //! Sensitivities and their derivations are in `plan` and `linear`.
 
 use std::sync::atomic::{AtomicUsize, Ordering};
+use std::sync::{Arc, Condvar, Mutex, PoisonError, RwLock};
 
 use smallvec::SmallVec;
 
@@ -38,7 +39,7 @@ const PARALLEL_BLOCK: usize = 1024;
 
 /// Batches below this many events are summed on the calling thread alone: starting a
 /// helper thread (tens of microseconds) is then a noticeable share of the work.
-const PARALLEL_MIN_EVENTS: usize = 8192;
+pub(crate) const PARALLEL_MIN_EVENTS: usize = 8192;
 
 /// One event's contribution: per statistic its group (or `NOT_PART`), and per component,
 /// in plan order, its grid values (`dim` each, zeros for statistics it is not part of), in
@@ -245,11 +246,7 @@ impl Contributor {
                     .join()
                     .unwrap_or_else(|panic| std::panic::resume_unwind(panic));
                 if let Some(part) = part {
-                    for (to, from) in aggregate.iter_mut().flatten().zip(part.iter().flatten()) {
-                        for (acc, v) in to.iter_mut().zip(from) {
-                            *acc = acc.saturating_add(*v);
-                        }
-                    }
+                    merge(aggregate, &part);
                 }
             }
         });
@@ -284,6 +281,150 @@ impl Contributor {
             }
         }
     }
+}
+
+/// A window aggregate: `[stat][component]` → flat `groups × dim` values.
+type Aggregate = Vec<Vec<Vec<i128>>>;
+
+/// The contributions of a closed window's survivors, shared with threads that offer help
+/// between their own jobs (the replay's parse workers, through a [`HelpBoard`]): the
+/// engine thread and the helpers take blocks of 1,024 events from an atomic
+/// counter, each sums its blocks into its own aggregate, and the engine adds the helpers'
+/// sums when every block is done ([`SharedSum::finish`]). Unlike the scoped helpers of
+/// [`Contributor::add_kept`], no thread is started, and no thread competes with the
+/// parse worker for its core.
+///
+/// The result does not depend on which thread takes which block: see
+/// [`Contributor::add_kept`] for why these sums cannot saturate.
+#[derive(Debug)]
+pub struct SharedSum {
+    contributor: Arc<Contributor>,
+    /// The window's events (read by every helper; taken back by the engine at the end).
+    events: RwLock<Vec<Event>>,
+    kept: Vec<bool>,
+    blocks: usize,
+    /// The next block to take.
+    next: AtomicUsize,
+    /// The helpers' sum so far and the number of blocks they have finished.
+    helped: Mutex<(Option<Aggregate>, usize)>,
+    /// Signalled when a helper finishes its blocks.
+    progress: Condvar,
+    /// The aggregate's shape (`[stat][component]` lengths), for the helpers' sums.
+    shape: Vec<Vec<usize>>,
+}
+
+impl SharedSum {
+    /// The sum of the `events[i]` with `kept[i]` into an aggregate shaped like `like`.
+    ///
+    /// # Panics
+    /// If `kept.len() != events.len()`.
+    pub fn new(
+        contributor: Arc<Contributor>,
+        events: Vec<Event>,
+        kept: Vec<bool>,
+        like: &[Vec<Vec<i128>>],
+    ) -> SharedSum {
+        assert_eq!(kept.len(), events.len(), "one flag per event");
+        SharedSum {
+            contributor,
+            blocks: events.len().div_ceil(PARALLEL_BLOCK),
+            events: RwLock::new(events),
+            kept,
+            next: AtomicUsize::new(0),
+            helped: Mutex::new((None, 0)),
+            progress: Condvar::new(),
+            shape: like
+                .iter()
+                .map(|per| per.iter().map(Vec::len).collect())
+                .collect(),
+        }
+    }
+
+    /// Takes blocks until none is left, adding them into `into`; returns how many.
+    fn take_blocks(&self, events: &[Event], into: &mut [Vec<Vec<i128>>]) -> usize {
+        let mut taken = 0;
+        loop {
+            let b = self.next.fetch_add(1, Ordering::Relaxed);
+            if b >= self.blocks {
+                return taken;
+            }
+            let range = b * PARALLEL_BLOCK..((b + 1) * PARALLEL_BLOCK).min(events.len());
+            self.contributor
+                .add_kept(&events[range.clone()], &self.kept[range], into, 1);
+            taken += 1;
+        }
+    }
+
+    /// A helper's turn: takes blocks until none is left and hands its sum over. Returns at
+    /// once when every block is taken.
+    pub fn help(&self) {
+        if self.next.load(Ordering::Relaxed) >= self.blocks {
+            return;
+        }
+        let mut part: Vec<Vec<Vec<i128>>> = self
+            .shape
+            .iter()
+            .map(|per| per.iter().map(|&n| vec![0i128; n]).collect())
+            .collect();
+        let taken = {
+            let events = self.events.read().unwrap_or_else(PoisonError::into_inner);
+            self.take_blocks(&events, &mut part)
+        };
+        if taken == 0 {
+            return;
+        }
+        let mut helped = self.helped.lock().unwrap_or_else(PoisonError::into_inner);
+        match &mut helped.0 {
+            Some(sum) => merge(sum, &part),
+            None => helped.0 = Some(part),
+        }
+        helped.1 += taken;
+        drop(helped);
+        self.progress.notify_all();
+    }
+
+    /// The engine's turn: takes the blocks left, waits for the helpers' blocks, adds
+    /// everything into `into` and returns the event vector (for reuse).
+    pub fn finish(&self, into: &mut [Vec<Vec<i128>>]) -> Vec<Event> {
+        let mine = {
+            let events = self.events.read().unwrap_or_else(PoisonError::into_inner);
+            self.take_blocks(&events, into)
+        };
+        let mut helped = self.helped.lock().unwrap_or_else(PoisonError::into_inner);
+        while helped.1 + mine < self.blocks {
+            helped = self
+                .progress
+                .wait(helped)
+                .unwrap_or_else(PoisonError::into_inner);
+        }
+        if let Some(sum) = helped.0.take() {
+            merge(into, &sum);
+        }
+        drop(helped);
+        // Every block is summed, so no helper holds the events any more.
+        std::mem::take(&mut *self.events.write().unwrap_or_else(PoisonError::into_inner))
+    }
+}
+
+/// Adds aggregate `part` into `into` (same shape): see [`Contributor::add_kept`] for
+/// why this saturating addition never saturates on window aggregates.
+pub fn merge(into: &mut [Vec<Vec<i128>>], part: &[Vec<Vec<i128>>]) {
+    for (to, from) in into.iter_mut().flatten().zip(part.iter().flatten()) {
+        for (acc, v) in to.iter_mut().zip(from) {
+            *acc = acc.saturating_add(*v);
+        }
+    }
+}
+
+/// Threads that can lend a hand with a window close: the engine posts a [`SharedSum`]
+/// while it works on it and withdraws it when done; a helper calls [`SharedSum::help`]
+/// on what is posted, between its own jobs (`scrim replay`'s parse workers, see
+/// `runtime::parse_pool`).
+pub trait HelpBoard: Send + Sync + std::fmt::Debug {
+    /// Offers `sum` to the helpers.
+    fn post(&self, sum: Arc<SharedSum>);
+    /// Takes the offer back (every block is done).
+    fn withdraw(&self);
 }
 
 /// The event's group index in one statistic, or `None` when one of its category values
@@ -532,6 +673,43 @@ mod tests {
             .zip(want.iter().flatten().flatten())
         {
             assert_eq!(*t, 2 * w);
+        }
+    }
+
+    /// A [`SharedSum`] finished by the engine while 0 to 3 helpers call `help` (some
+    /// before, some after the last block is taken) adds exactly what `add_event` of each
+    /// kept event adds, and gives the events back.
+    #[test]
+    fn shared_sum_with_helpers_equals_adding_each_kept_event() {
+        let config = Config::from_toml_str(crate::app::DEMO_CONFIG).expect("demo config");
+        let plan = Plan::new(&config).expect("demo plan");
+        let contributor = Arc::new(Contributor::new(&plan));
+        let n = 12 * PARALLEL_BLOCK + 5;
+        let events = varied_events(&plan, n);
+        let kept: Vec<bool> = (0..n).map(|i| i % 4 != 2).collect();
+        let mut want = zero_aggregate(&plan);
+        contributor.add_kept(&events, &kept, &mut want, 1);
+        for helpers in 0..4 {
+            let mut got = zero_aggregate(&plan);
+            let sum = Arc::new(SharedSum::new(
+                contributor.clone(),
+                events.clone(),
+                kept.clone(),
+                &got,
+            ));
+            let back = std::thread::scope(|scope| {
+                for _ in 0..helpers {
+                    let sum = Arc::clone(&sum);
+                    scope.spawn(move || {
+                        sum.help();
+                        sum.help();
+                    });
+                }
+                sum.finish(&mut got)
+            });
+            sum.help(); // nothing left: returns at once
+            assert_eq!(got, want, "{helpers} helpers");
+            assert_eq!(back.len(), n, "the events come back");
         }
     }
 

@@ -21,7 +21,7 @@ use smallvec::SmallVec;
 
 use crate::config::Config;
 use crate::engine::bound::Bounder;
-use crate::engine::contribution::Contributor;
+use crate::engine::contribution::{Contributor, HelpBoard, PARALLEL_MIN_EVENTS, SharedSum};
 use crate::engine::dd::Dd;
 use crate::engine::event::{Event, LineParser, LineShape, RejectReason, Rejection, Schema};
 use crate::engine::ledger::{BudgetError, EpochCharge, Ledger};
@@ -191,7 +191,9 @@ pub struct Engine {
     open: BTreeMap<i64, WindowAgg>,
     bounder: Option<Bounder<Retained>>,
     /// Turns events into their exact per-statistic contributions.
-    contributor: Contributor,
+    contributor: Arc<Contributor>,
+    /// Threads that lend a hand with a close's survivors (replay's parse workers).
+    help_board: Option<Arc<dyn HelpBoard>>,
     epoch: Option<EpochState>,
     ledger: Ledger,
     halted: Option<BudgetError>,
@@ -282,7 +284,8 @@ impl Engine {
             max_event_time: None,
             open: BTreeMap::new(),
             bounder,
-            contributor,
+            contributor: Arc::new(contributor),
+            help_board: None,
             epoch: None,
             halted: None,
             counters: Counters::default(),
@@ -300,6 +303,13 @@ impl Engine {
     /// core) set it. Releases do not depend on it.
     pub fn set_close_threads(&mut self, threads: usize) {
         self.close_threads = threads.max(1);
+    }
+
+    /// Lets the threads behind `board` help with the survivors' contributions at a
+    /// window close (`scrim replay --threads`, whose parse workers help between chunks;
+    /// `None` takes it back). Releases do not depend on it.
+    pub fn set_help_board(&mut self, board: Option<Arc<dyn HelpBoard>>) {
+        self.help_board = board;
     }
 
     /// The plan the engine runs.
@@ -525,12 +535,34 @@ impl Engine {
         if let Some(b) = &mut self.bounder {
             let (contributor, hashers) = (&self.contributor, &self.hashers);
             let threads = self.close_threads;
-            let dropped = b.close_batch(
-                w,
-                epoch,
-                |e| bounding_priority(hashers, e),
-                |events, kept| contributor.add_kept(events, kept, &mut agg.values, threads),
-            );
+            let priority = |e: &Event| bounding_priority(hashers, e);
+            let dropped = match &self.help_board {
+                Some(board) => {
+                    let (dropped, taken) = b.close_take(w, epoch, priority);
+                    if let Some((events, kept)) = taken {
+                        let events = if events.len() >= PARALLEL_MIN_EVENTS {
+                            let sum = Arc::new(SharedSum::new(
+                                Arc::clone(contributor),
+                                events,
+                                kept,
+                                &agg.values,
+                            ));
+                            board.post(Arc::clone(&sum));
+                            let events = sum.finish(&mut agg.values);
+                            board.withdraw();
+                            events
+                        } else {
+                            contributor.add_kept(&events, &kept, &mut agg.values, 1);
+                            events
+                        };
+                        b.recycle_events(events);
+                    }
+                    dropped
+                }
+                None => b.close_batch(w, epoch, priority, |events, kept| {
+                    contributor.add_kept(events, kept, &mut agg.values, threads)
+                }),
+            };
             self.counters.dropped_event_bound += dropped.by_event_cap;
             self.counters.dropped_window_bound += dropped.by_window_cap;
         }
@@ -820,6 +852,12 @@ impl Prepared {
     /// The parser's rejection of the line, if it rejected it.
     pub fn rejection(&self) -> Option<&Rejection> {
         self.outcome.as_ref().err()
+    }
+
+    /// The parsed event (tests).
+    #[cfg(test)]
+    pub(crate) fn event(&self) -> Option<&Event> {
+        self.outcome.as_ref().ok()
     }
 }
 
@@ -1548,6 +1586,33 @@ target_bound = 30.0
     /// Every record (as its `Debug` text, truth included) and the counters of a seeded
     /// engine that closes windows on `threads` threads.
     fn run_on_threads(cfg: &Config, lines: &[String], threads: usize) -> (Vec<String>, Counters) {
+        run_with(cfg, lines, threads, None)
+    }
+
+    /// A help board whose helper is a thread started at each post (the replay's parse
+    /// workers help between chunks instead).
+    #[derive(Debug, Default)]
+    struct ThreadBoard(std::sync::Mutex<Option<std::thread::JoinHandle<()>>>);
+
+    impl HelpBoard for ThreadBoard {
+        fn post(&self, sum: Arc<SharedSum>) {
+            *self.0.lock().expect("board") = Some(std::thread::spawn(move || sum.help()));
+        }
+
+        fn withdraw(&self) {
+            if let Some(helper) = self.0.lock().expect("board").take() {
+                helper.join().expect("helper");
+            }
+        }
+    }
+
+    /// [`run_on_threads`] with an optional help board.
+    fn run_with(
+        cfg: &Config,
+        lines: &[String],
+        threads: usize,
+        board: Option<Arc<dyn HelpBoard>>,
+    ) -> (Vec<String>, Counters) {
         let mut e = Engine::new(
             cfg,
             NoiseKey::from_seed(1),
@@ -1558,6 +1623,7 @@ target_bound = 30.0
         )
         .expect("engine");
         e.set_close_threads(threads);
+        e.set_help_board(board);
         for l in lines {
             e.handle_line(l.as_bytes());
         }
@@ -1570,7 +1636,7 @@ target_bound = 30.0
     }
 
     /// Sharing the survivors' contributions among threads at a close
-    /// (`set_close_threads`) changes no release: windows of 20,000 buffered events (half
+    /// (`set_close_threads`, or a help board) changes no release: windows of 20,000 buffered events (half
     /// over the per-window bound), well above `add_kept`'s threshold, closed with 1 and 3
     /// threads, give the same records, truth included.
     #[test]
@@ -1603,7 +1669,10 @@ target_bound = 30.0
             dropped, 30_000,
             "units u and u + 5000 share a card: 4 events each"
         );
-        assert_eq!(run(3), (one, dropped));
+        assert_eq!(run(3), (one.clone(), dropped));
+        // And with a help board (the replay's path), whose helper takes blocks too.
+        let (boarded, counters) = run_with(&cfg, &lines, 2, Some(Arc::new(ThreadBoard::default())));
+        assert_eq!((boarded, counters.dropped_event_bound), (one, dropped));
     }
 
     /// `for_blocks` hands every item to `each` exactly once, with its index in the slice,

@@ -32,8 +32,10 @@
 
 use std::collections::BTreeMap;
 use std::io::{self, Read};
-use std::sync::{Condvar, Mutex, MutexGuard, PoisonError};
+use std::sync::atomic::{AtomicBool, Ordering};
+use std::sync::{Arc, Condvar, Mutex, MutexGuard, PoisonError};
 
+use crate::engine::contribution::{HelpBoard, SharedSum};
 use crate::engine::core::{LineDecoder, Prepared};
 use crate::engine::event::{LineShape, SWAR_ONES, swar_position, swar_zero_bytes};
 
@@ -46,6 +48,59 @@ pub const CHUNK_BYTES: usize = 64 * 1024;
 /// when a worker holding the next chunk is descheduled (on a loaded machine), instead of
 /// waiting for it; 16 chunks are about 1 MiB of input.
 pub const CHUNKS_IN_FLIGHT_PER_THREAD: u64 = 16;
+
+/// Longest a waiting worker can miss a window close's call for help (see [`Assists`]).
+const ASSIST_POLL: std::time::Duration = std::time::Duration::from_millis(1);
+
+/// Where the engine posts a closing window's survivors ([`SharedSum`]) for the parse
+/// workers to help with between chunks (issue 9: the engine thread is the busy one, and
+/// scoped helper threads had to share the worker's core). Give it to the engine with
+/// `Engine::set_help_board` and to [`decode_in_order`].
+#[derive(Debug, Default)]
+pub struct Assists {
+    posted: Mutex<Option<Arc<SharedSum>>>,
+    /// Whether something is posted (read without the lock between chunks).
+    any: AtomicBool,
+    room: Condvar,
+}
+
+impl Assists {
+    /// Whether a close is waiting for help.
+    fn wanted(&self) -> bool {
+        self.any.load(Ordering::Acquire)
+    }
+
+    /// Helps with the posted close, if any.
+    fn help(&self) {
+        if !self.wanted() {
+            return;
+        }
+        let posted = self
+            .posted
+            .lock()
+            .unwrap_or_else(PoisonError::into_inner)
+            .clone();
+        if let Some(sum) = posted {
+            sum.help();
+        }
+    }
+}
+
+impl HelpBoard for Assists {
+    fn post(&self, sum: Arc<SharedSum>) {
+        *self.posted.lock().unwrap_or_else(PoisonError::into_inner) = Some(sum);
+        self.any.store(true, Ordering::Release);
+        self.room.notify_all();
+    }
+
+    fn withdraw(&self) {
+        self.any.store(false, Ordering::Release);
+        self.posted
+            .lock()
+            .unwrap_or_else(PoisonError::into_inner)
+            .take();
+    }
+}
 
 /// A line ready for the engine: the parser's verdict, unit id hashed.
 type Verdict = Prepared;
@@ -92,9 +147,10 @@ struct Shared<R> {
     queue: Mutex<Queue>,
     input: Mutex<Input<R>>,
     max_in_flight: u64,
-    /// Signalled when a chunk is consumed (room to read ahead) or the queue closes
-    /// (workers wait on it).
-    room: Condvar,
+    /// Window closes the workers can help with; its `room` is signalled when a chunk is
+    /// consumed (room to read ahead), the queue closes, or help is wanted (workers wait on
+    /// it).
+    assists: Arc<Assists>,
     /// Signalled when a chunk is parsed, the input ends or a worker is lost (the caller
     /// waits on it).
     progress: Condvar,
@@ -146,7 +202,7 @@ impl<R: Read> Shared<R> {
                 q.read_error = outcome.err();
                 drop(q);
                 self.progress.notify_all();
-                self.room.notify_all();
+                self.assists.room.notify_all();
                 None
             }
         }
@@ -160,7 +216,7 @@ struct CloseOnDrop<'a, R: Read>(&'a Shared<R>);
 impl<R: Read> Drop for CloseOnDrop<'_, R> {
     fn drop(&mut self) {
         self.0.lock().closed = true;
-        self.0.room.notify_all();
+        self.0.assists.room.notify_all();
     }
 }
 
@@ -316,6 +372,8 @@ fn worker<R: Read>(shared: &Shared<R>, decoder: &LineDecoder) {
     let _loss = ReportLoss(shared);
     let mut shape = LineShape::new();
     loop {
+        // A window close first: the engine thread is waiting for it.
+        shared.assists.help();
         if let Some(mut job) = shared.read_chunk() {
             decode_job(decoder, &mut job, &mut shape);
             shared.lock().done.insert(job.seq, job);
@@ -330,10 +388,17 @@ fn worker<R: Read>(shared: &Shared<R>, decoder: &LineDecoder) {
             if q.closed || q.input_done || q.worker_lost {
                 return;
             }
-            if q.read - q.consumed < shared.max_in_flight {
+            if q.read - q.consumed < shared.max_in_flight || shared.assists.wanted() {
                 break;
             }
-            q = shared.room.wait(q).unwrap_or_else(PoisonError::into_inner);
+            // Help is posted without this lock, so its wake-up can fall between the check
+            // above and the wait: the timeout bounds that delay.
+            q = shared
+                .assists
+                .room
+                .wait_timeout(q, ASSIST_POLL)
+                .unwrap_or_else(PoisonError::into_inner)
+                .0;
         }
     }
 }
@@ -349,6 +414,7 @@ pub fn decode_in_order<R: Read + Send>(
     input: R,
     decoder: &LineDecoder,
     threads: usize,
+    assists: &Arc<Assists>,
     mut consume: impl FnMut(Verdict) -> io::Result<()>,
 ) -> io::Result<u64> {
     let shared = Shared {
@@ -371,7 +437,7 @@ pub fn decode_in_order<R: Read + Send>(
             next_seq: 0,
         }),
         max_in_flight: CHUNKS_IN_FLIGHT_PER_THREAD * threads.max(1) as u64,
-        room: Condvar::new(),
+        assists: Arc::clone(assists),
         progress: Condvar::new(),
     };
     let n_workers = threads.saturating_sub(1);
@@ -430,7 +496,7 @@ pub fn decode_in_order<R: Read + Send>(
                 q.consumed = next_consume;
                 q.spare.push((job.bytes, job.verdicts));
             }
-            shared.room.notify_one();
+            shared.assists.room.notify_one();
         }
     })
 }
@@ -468,6 +534,10 @@ mod tests {
     use crate::engine::noise::NoiseKey;
     use crate::engine::{Engine, EngineOptions};
     use std::io::BufRead;
+
+    fn no_assists() -> Arc<Assists> {
+        Arc::new(Assists::default())
+    }
 
     fn decoder() -> LineDecoder {
         let config =
@@ -553,7 +623,7 @@ mod tests {
                 fail_next: false,
             };
             let mut got = Vec::new();
-            decode_in_order(reader, &decoder, threads, |v| {
+            decode_in_order(reader, &decoder, threads, &no_assists(), |v| {
                 got.push(v);
                 Ok(())
             })
@@ -564,10 +634,16 @@ mod tests {
 
     fn parallel(input: &[u8], decoder: &LineDecoder, threads: usize, step: usize) -> Vec<Verdict> {
         let mut out = Vec::new();
-        let n = decode_in_order(Trickle { data: input, step }, decoder, threads, |v| {
-            out.push(v);
-            Ok(())
-        })
+        let n = decode_in_order(
+            Trickle { data: input, step },
+            decoder,
+            threads,
+            &no_assists(),
+            |v| {
+                out.push(v);
+                Ok(())
+            },
+        )
         .expect("in memory");
         assert_eq!(n as usize, out.len());
         out
@@ -651,7 +727,7 @@ mod tests {
         let decoder = decoder();
         let input = mixed_input();
         let mut seen = 0;
-        let result = decode_in_order(&input[..], &decoder, 2, |_| {
+        let result = decode_in_order(&input[..], &decoder, 2, &no_assists(), |_| {
             seen += 1;
             if seen == 2500 {
                 Err(io::Error::other("sink full"))
@@ -664,5 +740,62 @@ mod tests {
             "sink full"
         );
         assert_eq!(seen, 2500);
+    }
+
+    /// A window close posted on the pool's `Assists` mid-stream (as the engine does) is
+    /// summed exactly, whoever takes its blocks, and the lines still come in order.
+    #[test]
+    fn a_posted_close_is_summed_while_lines_are_decoded() {
+        use crate::engine::contribution::Contributor;
+        use crate::engine::plan::Plan;
+        let plan = Plan::new(&Config::from_toml_str(crate::app::DEMO_CONFIG).expect("config"))
+            .expect("plan");
+        let contributor = Arc::new(Contributor::new(&plan));
+        let decoder = decoder();
+        let input = mixed_input();
+        let expected = sequential(&input, &decoder);
+        // The survivors: the accepted events of the input, every third dropped.
+        let events: Vec<_> = expected.iter().filter_map(|p| p.event().cloned()).collect();
+        assert!(events.len() > 5_000, "{} events", events.len());
+        let kept: Vec<bool> = (0..events.len()).map(|i| i % 3 != 0).collect();
+        let zero = || -> Vec<Vec<Vec<i128>>> {
+            plan.stats
+                .iter()
+                .map(|s| {
+                    s.components
+                        .iter()
+                        .map(|c| vec![0i128; s.groups.len() * c.dim])
+                        .collect()
+                })
+                .collect()
+        };
+        let mut want = zero();
+        contributor.add_kept(&events, &kept, &mut want, 1);
+        for threads in [2, 3] {
+            let assists = no_assists();
+            let mut got = zero();
+            let mut seen = Vec::new();
+            decode_in_order(&input[..], &decoder, threads, &assists, |v| {
+                seen.push(v);
+                if seen.len() % 2_000 == 0 {
+                    let mut part = zero();
+                    let sum = Arc::new(SharedSum::new(
+                        contributor.clone(),
+                        events.clone(),
+                        kept.clone(),
+                        &part,
+                    ));
+                    assists.post(Arc::clone(&sum));
+                    sum.finish(&mut part);
+                    assists.withdraw();
+                    got = part;
+                    assert_eq!(got, want, "threads {threads}");
+                }
+                Ok(())
+            })
+            .expect("in memory");
+            assert_eq!(seen, expected);
+            assert_eq!(got, want);
+        }
     }
 }
