@@ -203,39 +203,14 @@ impl Contributor {
             }
             return;
         }
-        let blocks = events.len().div_ceil(PARALLEL_BLOCK);
         let next = AtomicUsize::new(0);
-        // Takes blocks until none is left; returns how many it summed into `into`.
-        let work = |into: &mut [Vec<Vec<i128>>]| -> usize {
-            let mut taken = 0;
-            loop {
-                let b = next.fetch_add(1, Ordering::Relaxed);
-                if b >= blocks {
-                    return taken;
-                }
-                let range = b * PARALLEL_BLOCK..((b + 1) * PARALLEL_BLOCK).min(events.len());
-                for (ev, _) in events[range.clone()]
-                    .iter()
-                    .zip(&kept[range])
-                    .filter(|(_, k)| **k)
-                {
-                    self.add_event(ev, into);
-                }
-                taken += 1;
-            }
-        };
-        let shape: Vec<Vec<usize>> = aggregate
-            .iter()
-            .map(|per| per.iter().map(Vec::len).collect())
-            .collect();
+        let work = |into: &mut [Vec<Vec<i128>>]| take_blocks(self, &next, events, kept, into);
+        let shape = shape_of(aggregate);
         std::thread::scope(|scope| {
             let helpers: Vec<_> = (1..threads)
                 .map(|_| {
                     scope.spawn(|| {
-                        let mut part: Vec<Vec<Vec<i128>>> = shape
-                            .iter()
-                            .map(|per| per.iter().map(|&n| vec![0i128; n]).collect())
-                            .collect();
+                        let mut part = zeros(&shape);
                         (work(&mut part) > 0).then_some(part)
                     })
                 })
@@ -333,25 +308,7 @@ impl SharedSum {
             next: AtomicUsize::new(0),
             helped: Mutex::new((None, 0)),
             progress: Condvar::new(),
-            shape: like
-                .iter()
-                .map(|per| per.iter().map(Vec::len).collect())
-                .collect(),
-        }
-    }
-
-    /// Takes blocks until none is left, adding them into `into`; returns how many.
-    fn take_blocks(&self, events: &[Event], into: &mut [Vec<Vec<i128>>]) -> usize {
-        let mut taken = 0;
-        loop {
-            let b = self.next.fetch_add(1, Ordering::Relaxed);
-            if b >= self.blocks {
-                return taken;
-            }
-            let range = b * PARALLEL_BLOCK..((b + 1) * PARALLEL_BLOCK).min(events.len());
-            self.contributor
-                .add_kept(&events[range.clone()], &self.kept[range], into, 1);
-            taken += 1;
+            shape: shape_of(like),
         }
     }
 
@@ -361,14 +318,16 @@ impl SharedSum {
         if self.next.load(Ordering::Relaxed) >= self.blocks {
             return;
         }
-        let mut part: Vec<Vec<Vec<i128>>> = self
-            .shape
-            .iter()
-            .map(|per| per.iter().map(|&n| vec![0i128; n]).collect())
-            .collect();
+        let mut part = zeros(&self.shape);
         let taken = {
             let events = self.events.read().unwrap_or_else(PoisonError::into_inner);
-            self.take_blocks(&events, &mut part)
+            take_blocks(
+                &self.contributor,
+                &self.next,
+                &events,
+                &self.kept,
+                &mut part,
+            )
         };
         if taken == 0 {
             return;
@@ -388,7 +347,7 @@ impl SharedSum {
     pub fn finish(&self, into: &mut [Vec<Vec<i128>>]) -> Vec<Event> {
         let mine = {
             let events = self.events.read().unwrap_or_else(PoisonError::into_inner);
-            self.take_blocks(&events, into)
+            take_blocks(&self.contributor, &self.next, &events, &self.kept, into)
         };
         let mut helped = self.helped.lock().unwrap_or_else(PoisonError::into_inner);
         while helped.1 + mine < self.blocks {
@@ -414,6 +373,45 @@ pub fn merge(into: &mut [Vec<Vec<i128>>], part: &[Vec<Vec<i128>>]) {
             *acc = acc.saturating_add(*v);
         }
     }
+}
+
+/// Takes blocks of [`PARALLEL_BLOCK`] events from the counter `next` until none of
+/// `events` is left and adds their survivors (`kept`) into `into`; returns how many blocks
+/// it took. Shared by every thread working on one window's sum.
+fn take_blocks(
+    contributor: &Contributor,
+    next: &AtomicUsize,
+    events: &[Event],
+    kept: &[bool],
+    into: &mut [Vec<Vec<i128>>],
+) -> usize {
+    let blocks = events.len().div_ceil(PARALLEL_BLOCK);
+    let mut taken = 0;
+    loop {
+        let b = next.fetch_add(1, Ordering::Relaxed);
+        if b >= blocks {
+            return taken;
+        }
+        let range = b * PARALLEL_BLOCK..((b + 1) * PARALLEL_BLOCK).min(events.len());
+        contributor.add_kept(&events[range.clone()], &kept[range], into, 1);
+        taken += 1;
+    }
+}
+
+/// The `[stat][component]` lengths of an aggregate.
+fn shape_of(aggregate: &[Vec<Vec<i128>>]) -> Vec<Vec<usize>> {
+    aggregate
+        .iter()
+        .map(|per| per.iter().map(Vec::len).collect())
+        .collect()
+}
+
+/// A zero aggregate of the given shape.
+fn zeros(shape: &[Vec<usize>]) -> Aggregate {
+    shape
+        .iter()
+        .map(|per| per.iter().map(|&n| vec![0i128; n]).collect())
+        .collect()
 }
 
 /// Threads that can lend a hand with a window close: the engine posts a [`SharedSum`]

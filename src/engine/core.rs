@@ -785,10 +785,9 @@ const GROUP_BLOCK: usize = 1024;
 /// of the block's first item), on up to `threads` threads, the calling thread included,
 /// when there are at least two blocks; on the calling thread alone otherwise. For per-group
 /// work whose result does not depend on the order or the thread: every node's noise is a
-/// function of its identity (see `KeyedNoise`), and each record of its group's estimates
-/// and its place in the order (issue 9: closing a window of 100,000 groups was mostly
-/// drawing their noise and building their records). Blocks are taken from a shared
-/// iterator, so a thread the OS deschedules holds back one block at most.
+/// function of its identity (see `KeyedNoise`; issue 9: closing a window of 100,000 groups
+/// was mostly drawing their noise). Blocks are taken from a shared iterator, so a thread
+/// the OS deschedules holds back one block at most.
 ///
 /// # Panics
 /// Re-raises a helper thread's panic.
