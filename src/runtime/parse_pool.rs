@@ -24,6 +24,12 @@
 //! reads only when no parsed chunk is waiting for it (issue 9: reading was a tenth of its
 //! time when it read every chunk).
 //!
+//! # Helping the engine
+//! A worker also helps with the window close the engine posts on [`Assists`] (summing a
+//! closed window's survivors, in blocks), before its next chunk or when woken while it
+//! waits for room to read ahead. The sum is integer addition, so who takes which block
+//! changes nothing (see `SharedSum`).
+//!
 //! # Memory
 //! At most [`CHUNKS_IN_FLIGHT_PER_THREAD`] × `threads` chunks of [`CHUNK_BYTES`] are in
 //! flight (read but not yet consumed), so memory does not grow with the input (about 2 MiB
