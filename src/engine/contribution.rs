@@ -194,10 +194,12 @@ impl Contributor {
         min_events: usize,
     ) {
         assert_eq!(kept.len(), events.len(), "one flag per event");
-        let cells: usize = aggregate.iter().flatten().map(Vec::len).sum();
         // A helper zeroes, fills and hands back a whole aggregate: only worth it when the
         // batch is several times the aggregate's size.
-        if threads <= 1 || events.len() < min_events.max(4 * cells) {
+        if threads <= 1
+            || events.len() < min_events
+            || events.len() < 4 * aggregate.iter().flatten().map(Vec::len).sum::<usize>()
+        {
             for (ev, _) in events.iter().zip(kept).filter(|(_, k)| **k) {
                 self.add_event(ev, aggregate);
             }

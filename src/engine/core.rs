@@ -1386,9 +1386,9 @@ target_bound = 30.0
         out
     }
 
-    /// Exact leaves `[stat][component][group][leaf]` after processing `lines`.
-    fn leaves(cfg: &Config, lines: &[&str]) -> Vec<Vec<Vec<Vec<Vec<i128>>>>> {
-        let mut e = Engine::new(
+    /// A seeded engine for `cfg` that keeps the exact leaves (`truth`).
+    fn seeded_engine(cfg: &Config) -> Engine {
+        Engine::new(
             cfg,
             NoiseKey::from_seed(1),
             EngineOptions {
@@ -1396,7 +1396,12 @@ target_bound = 30.0
                 danger_keep_truth: true,
             },
         )
-        .expect("engine");
+        .expect("engine")
+    }
+
+    /// Exact leaves `[stat][component][group][leaf]` after processing `lines`.
+    fn leaves(cfg: &Config, lines: &[&str]) -> Vec<Vec<Vec<Vec<Vec<i128>>>>> {
+        let mut e = seeded_engine(cfg);
         for l in lines {
             e.handle_line(l.as_bytes());
         }
@@ -1612,15 +1617,7 @@ target_bound = 30.0
         threads: usize,
         board: Option<Arc<dyn HelpBoard>>,
     ) -> (Vec<String>, Counters) {
-        let mut e = Engine::new(
-            cfg,
-            NoiseKey::from_seed(1),
-            EngineOptions {
-                seeded: true,
-                danger_keep_truth: true,
-            },
-        )
-        .expect("engine");
+        let mut e = seeded_engine(cfg);
         e.set_close_threads(threads);
         e.set_help_board(board);
         for l in lines {
