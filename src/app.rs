@@ -167,7 +167,7 @@ pub fn pump_with_progress<R: Read + Send>(
     }
     let mut n_releases = 0u64;
     let n_lines = crate::runtime::parse_pool::for_each_line(input, |line| {
-        engine.handle_line(line);
+        engine.handle_raw_line(line);
         while let Some(r) = engine.poll_release() {
             sink.publish(&r)?;
             n_releases += 1;

@@ -23,7 +23,9 @@ use crate::config::Config;
 use crate::engine::bound::Bounder;
 use crate::engine::contribution::{Contributor, HelpBoard, PARALLEL_MIN_EVENTS, SharedSum};
 use crate::engine::dd::Dd;
-use crate::engine::event::{Event, LineParser, LineShape, RejectReason, Rejection, Schema};
+use crate::engine::event::{
+    Event, LineParser, LineShape, RawLine, RejectReason, Rejection, Schema,
+};
 use crate::engine::ledger::{BudgetError, EpochCharge, Ledger};
 use crate::engine::linear;
 use crate::engine::mechanism::{
@@ -369,6 +371,12 @@ impl Engine {
 
     /// Parses and handles one input line (without its newline).
     pub fn handle_line(&mut self, line: &[u8]) {
+        self.handle_raw_line(RawLine::Bytes(line));
+    }
+
+    /// [`Engine::handle_line`] of a line in either form (see [`RawLine`]): the same
+    /// verdict for the same bytes.
+    pub fn handle_raw_line(&mut self, line: RawLine<'_>) {
         let parsed = decode_line(&self.parser, &self.hashers, line, &mut self.shape);
         self.handle_parsed(parsed);
     }
@@ -870,7 +878,7 @@ impl LineDecoder {
     /// layout of the lines seen so far from one call to the next (see [`LineShape`]; the
     /// result does not depend on it).
     pub fn decode_with(&self, line: &[u8], shape: &mut LineShape) -> Result<Event, Rejection> {
-        decode_line(&self.parser, &self.hashers, line, shape)
+        decode_line(&self.parser, &self.hashers, RawLine::Bytes(line), shape)
     }
 
     /// [`LineDecoder::decode`], packaged for [`Engine::handle_prepared`]: a pure function
@@ -883,8 +891,13 @@ impl LineDecoder {
     /// [`LineDecoder::prepare`] with a [`LineShape`] carried between calls (see
     /// [`LineDecoder::decode_with`]).
     pub fn prepare_with(&self, line: &[u8], shape: &mut LineShape) -> Prepared {
+        self.prepare_raw_with(RawLine::Bytes(line), shape)
+    }
+
+    /// [`LineDecoder::prepare_with`] of a line in either form (see [`RawLine`]).
+    pub fn prepare_raw_with(&self, line: RawLine<'_>, shape: &mut LineShape) -> Prepared {
         Prepared {
-            outcome: self.decode_with(line, shape),
+            outcome: decode_line(&self.parser, &self.hashers, line, shape),
         }
     }
 
@@ -918,10 +931,10 @@ impl EventHashers {
 fn decode_line(
     parser: &LineParser,
     hashers: &EventHashers,
-    line: &[u8],
+    line: RawLine<'_>,
     shape: &mut LineShape,
 ) -> Result<Event, Rejection> {
-    parser.parse_with_shape(line, &|raw: &[u8]| hashers.unit.hash(raw), shape)
+    parser.parse_raw_with_shape(line, &|raw: &[u8]| hashers.unit.hash(raw), shape)
 }
 
 /// What the bounder keeps of an event: the event itself (120 bytes). Its contribution is

@@ -43,7 +43,7 @@ use std::sync::{Arc, Condvar, Mutex, MutexGuard, PoisonError};
 
 use crate::engine::contribution::{HelpBoard, SharedSum};
 use crate::engine::core::{LineDecoder, Prepared};
-use crate::engine::event::{LineShape, SWAR_ONES, swar_position, swar_zero_bytes};
+use crate::engine::event::{LineShape, RawLine};
 
 /// Target size of one chunk of input: about 450 demo lines, a millisecond of parsing. The
 /// few lock operations per chunk cost nothing next to that, and a chunk held by a thread
@@ -314,7 +314,7 @@ fn decode_job(decoder: &LineDecoder, job: &mut Job, shape: &mut LineShape) {
         ..
     } = job;
     split_lines(&bytes[..*len], |line| {
-        verdicts.push(decoder.prepare_with(line, shape));
+        verdicts.push(decoder.prepare_raw_with(line, shape));
         Ok(())
     })
     .unwrap_or(());
@@ -323,20 +323,79 @@ fn decode_job(decoder: &LineDecoder, job: &mut Job, shape: &mut LineShape) {
 /// Calls `each` with every line of a chunk, with the line rules of [`crate::app::pump`]:
 /// a line ends at `\n` (the last one may lack it) and one trailing `\r` is removed. Stops
 /// at the first error of `each`.
-fn split_lines(bytes: &[u8], mut each: impl FnMut(&[u8]) -> io::Result<()>) -> io::Result<()> {
+///
+/// Lines come as [`RawLine::Text`] when they lie in a stretch of the chunk that one
+/// `str::from_utf8` pass found valid, which costs half of checking each line on its own
+/// (issue 9); a line with an invalid byte comes as [`RawLine::Bytes`], for the parser to
+/// reject, and checking resumes after the invalid sequence. Each byte is checked at most
+/// twice (see [`Utf8Stretch`]), so hostile input costs no more than linear time.
+fn split_lines(
+    bytes: &[u8],
+    mut each: impl FnMut(RawLine<'_>) -> io::Result<()>,
+) -> io::Result<()> {
     // A chunk is never empty; when it ends with '\n' that newline closes the last line
     // instead of starting an empty one.
-    let mut body = bytes.strip_suffix(b"\n").unwrap_or(bytes);
+    let body = bytes.strip_suffix(b"\n").unwrap_or(bytes);
+    let mut stretch = Utf8Stretch::check(body, 0);
+    let mut start = 0;
     loop {
-        let (line, rest) = match find_newline(body) {
-            Some(at) => (&body[..at], Some(&body[at + 1..])),
-            None => (body, None),
-        };
-        each(line.strip_suffix(b"\r").unwrap_or(line))?;
-        match rest {
-            Some(rest) => body = rest,
-            None => return Ok(()),
+        let end = memchr::memchr(b'\n', &body[start..]).map_or(body.len(), |at| start + at);
+        // Move on to the stretch after an invalid sequence once no later line can lie in
+        // the current one.
+        while stretch.resume <= start && stretch.resume < body.len() {
+            stretch = Utf8Stretch::check(body, stretch.resume);
         }
+        let line = match stretch.text_of(start, end) {
+            Some(text) => RawLine::Text(text.strip_suffix('\r').unwrap_or(text)),
+            None => {
+                let line = &body[start..end];
+                RawLine::Bytes(line.strip_suffix(b"\r").unwrap_or(line))
+            }
+        };
+        each(line)?;
+        if end == body.len() {
+            return Ok(());
+        }
+        start = end + 1;
+    }
+}
+
+/// A stretch of valid UTF-8 in a chunk: `text` is `body[from..from + text.len()]`, and the
+/// invalid sequence after it (if any) ends at `resume`, where checking goes on.
+struct Utf8Stretch<'a> {
+    text: &'a str,
+    from: usize,
+    resume: usize,
+}
+
+impl<'a> Utf8Stretch<'a> {
+    /// The longest valid stretch of `body` from `from`. The stretch before an invalid
+    /// sequence is checked a second time to obtain it as `&str` (without `unsafe`), so a
+    /// byte is checked at most twice.
+    fn check(body: &'a [u8], from: usize) -> Utf8Stretch<'a> {
+        let rest = &body[from..];
+        match std::str::from_utf8(rest) {
+            Ok(text) => Utf8Stretch {
+                text,
+                from,
+                resume: body.len(),
+            },
+            Err(err) => {
+                let valid = err.valid_up_to();
+                Utf8Stretch {
+                    text: std::str::from_utf8(&rest[..valid]).unwrap_or_default(),
+                    from,
+                    // error_len None: the input ends inside a sequence.
+                    resume: from + valid + err.error_len().unwrap_or(rest.len() - valid),
+                }
+            }
+        }
+    }
+
+    /// `body[start..end]` as text, when this stretch holds all of it.
+    fn text_of(&self, start: usize, end: usize) -> Option<&'a str> {
+        let at = start.checked_sub(self.from)?;
+        self.text.get(at..at + (end - start))
     }
 }
 
@@ -346,7 +405,7 @@ fn split_lines(bytes: &[u8], mut each: impl FnMut(&[u8]) -> io::Result<()>) -> i
 /// one-thread replay). Returns the number of lines; stops at the first error.
 pub fn for_each_line<R: Read>(
     input: R,
-    mut each: impl FnMut(&[u8]) -> io::Result<()>,
+    mut each: impl FnMut(RawLine<'_>) -> io::Result<()>,
 ) -> io::Result<u64> {
     let mut reader = ChunkReader {
         input,
@@ -361,17 +420,6 @@ pub fn for_each_line<R: Read>(
         })?;
     }
     Ok(n_lines)
-}
-
-/// The position of the first `\n` in `bytes`, eight bytes at a time
-/// ([`swar_position`]). A byte-by-byte split cost 6% of a two-thread replay (issue 9).
-#[inline]
-fn find_newline(bytes: &[u8]) -> Option<usize> {
-    swar_position(
-        bytes,
-        |w| swar_zero_bytes(w ^ (SWAR_ONES * u64::from(b'\n'))),
-        |b| b == b'\n',
-    )
 }
 
 fn worker<R: Read>(shared: &Shared<R>, decoder: &LineDecoder) {
@@ -511,31 +559,64 @@ pub fn decode_in_order<R: Read + Send>(
 mod tests {
     use super::*;
 
-    /// The word-at-a-time newline search against `Iterator::position`, at every offset and
-    /// with the bytes that sit next to `\n` (0x0a) in value or could borrow into it.
+    /// The lines [`split_lines`] yields, with whether each came as text.
+    fn split(bytes: &[u8]) -> Vec<(Vec<u8>, bool)> {
+        let mut out = Vec::new();
+        split_lines(bytes, |line| {
+            out.push((line.as_bytes().to_vec(), matches!(line, RawLine::Text(_))));
+            Ok(())
+        })
+        .expect("never fails");
+        out
+    }
+
+    /// Every line of every sequence of up to four pieces (ASCII, multi-byte characters,
+    /// invalid bytes, truncated and surrogate sequences, CR, LF) comes out with the bytes
+    /// std's `split` gives (the reference), and as text exactly when std's `from_utf8`
+    /// accepts it: a chunk's UTF-8 stretches never hide an invalid line nor withhold a
+    /// valid one.
     #[test]
-    fn find_newline_matches_a_byte_search() {
-        for len in 0..40 {
-            for at in 0..=len {
-                for filler in [b'a', 0x0b, 0x09, 0x00, 0x8a, 0xff, 0x0a ^ 0x80] {
-                    let mut v = vec![filler; len];
-                    if at < len {
-                        v[at] = b'\n';
-                    }
-                    // A second newline later never hides the first.
-                    if at + 3 < len {
-                        v[at + 3] = b'\n';
-                    }
-                    let want = v.iter().position(|&b| b == b'\n');
-                    assert_eq!(
-                        find_newline(&v),
-                        want,
-                        "len {len}, newline at {at}, filler {filler:#x}"
-                    );
-                }
-            }
+    fn split_lines_hands_text_exactly_for_valid_lines() {
+        let pieces: [&[u8]; 10] = [
+            b"ab",
+            "\u{e9}".as_bytes(),
+            "\u{1f600}".as_bytes(),
+            b"\xff",
+            b"\xc3",
+            b"\xf0\x9f\x98",
+            b"\xed\xa0\x80",
+            b"\r",
+            b"\n",
+            b"\n\n",
+        ];
+        let mut cases = vec![Vec::new()];
+        for _ in 0..4 {
+            let longer: Vec<Vec<u8>> = cases
+                .iter()
+                .flat_map(|case| {
+                    pieces.iter().map(move |p| {
+                        let mut c = case.clone();
+                        c.extend_from_slice(p);
+                        c
+                    })
+                })
+                .collect();
+            cases.extend(longer);
+        }
+        cases.retain(|c| !c.is_empty());
+        for case in &cases {
+            let body = case.strip_suffix(b"\n").unwrap_or(case);
+            let want: Vec<(Vec<u8>, bool)> = body
+                .split(|&b| b == b'\n')
+                .map(|line| {
+                    let line = line.strip_suffix(b"\r").unwrap_or(line);
+                    (line.to_vec(), std::str::from_utf8(line).is_ok())
+                })
+                .collect();
+            assert_eq!(split(case), want, "{case:?}");
         }
     }
+
     use crate::config::Config;
     use crate::engine::noise::NoiseKey;
     use crate::engine::{Engine, EngineOptions};
@@ -575,7 +656,7 @@ mod tests {
         let decoder = decoder();
         let mut out = Vec::new();
         let n = for_each_line(Trickle { data: input, step }, |line| {
-            out.push(decoder.prepare(line));
+            out.push(decoder.prepare_raw_with(line, &mut LineShape::new()));
             Ok(())
         })
         .expect("in memory");
@@ -667,6 +748,12 @@ mod tests {
         for (i, line) in crate::demo::DemoFeed::new(&spec).take(8000).enumerate() {
             input.extend_from_slice(&line);
             input.extend_from_slice(if i % 7 == 0 { b"\r\n" } else { b"\n" });
+            // Invalid UTF-8 (rejected) and valid multi-byte text (an unknown zone) in
+            // many chunks: a chunk's UTF-8 check must not change any verdict.
+            if i % 97 == 0 {
+                input.extend_from_slice(b"{\"zone\":\"\xff\"}\n");
+                input.extend_from_slice("{\"zone\":\"h\u{e4}fen\"}\n".as_bytes());
+            }
             if i == 3000 {
                 input.extend_from_slice(b"\n\r\n");
                 input.extend_from_slice(&vec![b' '; CHUNK_BYTES + 10]);
