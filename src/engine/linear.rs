@@ -554,8 +554,27 @@ pub(crate) fn f64_to_i128(v: f64) -> i128 {
 /// outside [`GRID_EXP_RANGE`]. These are programming errors: the aggregate is created from
 /// the same layout.
 pub fn accumulate(layout: &Layout, x: &[f64], y: f64, grid_exp: i32, acc: &mut [i128]) {
-    assert_eq!(x.len(), layout.n_features, "feature vector length");
     assert_eq!(acc.len(), layout.dim(), "accumulator length");
+    accumulate_with(layout, x, y, grid_exp, |idx, units| {
+        acc[idx] = acc[idx].saturating_add(units);
+    });
+}
+
+/// The products of [`accumulate`], each handed to `add(index, units)` in packed order
+/// instead of added to an `i128` accumulator (callers that know the values are small sum
+/// them in `i64`: `contribution`'s block sums).
+///
+/// # Panics
+/// As [`accumulate`], but `add` must check its own index.
+#[inline(always)]
+pub(crate) fn accumulate_with(
+    layout: &Layout,
+    x: &[f64],
+    y: f64,
+    grid_exp: i32,
+    mut add: impl FnMut(usize, i128),
+) {
+    assert_eq!(x.len(), layout.n_features, "feature vector length");
     assert!(
         GRID_EXP_RANGE.contains(&grid_exp),
         "grid exponent {grid_exp}"
@@ -590,7 +609,7 @@ pub fn accumulate(layout: &Layout, x: &[f64], y: f64, grid_exp: i32, acc: &mut [
                         Some(units) => i128::from(units),
                         None => product_units(z[i], z[j], scale),
                     };
-                    acc[idx] = acc[idx].saturating_add(units);
+                    add(idx, units);
                     idx += 1;
                 }
             }
@@ -608,7 +627,7 @@ pub fn accumulate(layout: &Layout, x: &[f64], y: f64, grid_exp: i32, acc: &mut [
                 Some(units) => i128::from(units),
                 None => product_units(zi, zj, scale),
             };
-            acc[idx] = acc[idx].saturating_add(units);
+            add(idx, units);
             idx += 1;
         }
     }
