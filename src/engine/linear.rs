@@ -464,6 +464,12 @@ fn product_units_int(a: ExactParts, b: ExactParts, grid_exp: i32) -> Option<i64>
     let shift = grid_exp - a.exponent - b.exponent;
     let units = if mag == 0 || shift >= 107 {
         0
+    } else if shift > 64 {
+        // ⌊m/2^(s−1)⌋ = ⌊⌊m/2^64⌋/2^(s−65)⌋: the high half alone, in u64 (issue 9: the
+        // usual case, as products sit near 2^40 grid units; the u128 shift cost a tenth
+        // of the moment accumulation). ⌊m/2^64⌋ < 2^42, so the `+ 1` cannot wrap.
+        let high = (mag >> 64) as u64;
+        u128::from(((high >> (shift - 65)) + 1) >> 1)
     } else if shift > 0 {
         ((mag >> (shift - 1)) + 1) >> 1
     } else if shift > -52 && mag < 1u128 << (52 + shift) {
