@@ -182,6 +182,12 @@ pub struct Engine {
     window_ms: i64,
     lateness_ms: i64,
     idle_close_ms: i64,
+    /// The start (in ms) and index of the window of the last accepted event: most events
+    /// fall in the same window as the one before, and then need no division (issue 9).
+    recent_window: (i64, i64),
+    /// How far (in windows) past the next window to close an event may lie: one epoch plus
+    /// the lateness (see [`Engine::accept`]).
+    horizon_windows: i64,
     /// Absolute window index (time / length) of this generation's first leaf, that of
     /// epoch `epoch_base`.
     origin: Option<i64>,
@@ -280,6 +286,11 @@ impl Engine {
             window_ms,
             lateness_ms: config.window.allowed_lateness.0,
             idle_close_ms: config.window.idle_close.0,
+            // No window starts at i64::MAX: the first event computes its own.
+            recent_window: (i64::MAX, 0),
+            horizon_windows: i64::from(plan.epoch_windows)
+                + config.window.allowed_lateness.0 / window_ms
+                + 1,
             origin,
             epoch_base: carry.first_epoch,
             next_close: origin.unwrap_or(0),
@@ -433,7 +444,11 @@ impl Engine {
     /// far ahead (counted here). An accepted event is counted and moves the largest event
     /// time; the caller then places it with [`Engine::place`].
     fn accept(&mut self, time: Millis) -> Option<i64> {
-        let w = self.window_of(time);
+        let (start, recent) = self.recent_window;
+        let w = match time.0.checked_sub(start) {
+            Some(into) if (0..self.window_ms).contains(&into) => recent,
+            _ => self.window_of(time),
+        };
         let origin = *self.origin.get_or_insert(w);
         if self.next_close < origin {
             self.next_close = origin;
@@ -444,11 +459,11 @@ impl Engine {
         }
         // An event more than one epoch (plus the lateness) ahead of the oldest open window
         // would force closing a whole epoch of empty windows: almost always a broken clock.
-        let horizon = i64::from(self.plan.epoch_windows) + self.lateness_ms / self.window_ms + 1;
-        if w - self.next_close > horizon {
+        if w - self.next_close > self.horizon_windows {
             self.reject(REJECT_TIME_JUMP);
             return None;
         }
+        self.recent_window = (w.saturating_mul(self.window_ms), w);
         self.counters.accepted += 1;
         self.max_event_time = Some(self.max_event_time.map_or(time, |m| m.max(time)));
         Some(w)
@@ -1397,6 +1412,43 @@ target_bound = 30.0
         }
         out.sort_by_key(|e| e.0);
         out
+    }
+
+    /// Every accepted event is placed in window ⌊t / length⌋ (`div_euclid`, the
+    /// definition), whatever the order of times: the window of the previous event, which
+    /// `accept` reuses without dividing, must never stick to a later one. Times jump back
+    /// and forth within and across window edges, far ahead (a rejected time jump) and
+    /// late (behind the next window to close).
+    #[test]
+    fn accept_places_each_event_in_its_own_window() {
+        let cfg = Config::from_toml_str(crate::app::DEMO_CONFIG).expect("demo config");
+        let mut engine = seeded_engine(&cfg);
+        let hour = 3_600_000i64;
+        let base = 1_772_409_600_000i64; // 2026-03-02T00:00:00Z
+        let mut times = Vec::new();
+        for i in 0..2000i64 {
+            // A walk forward with steps back, edges hit exactly (i % 7 == 0).
+            let t = base + (i / 3) * (hour / 5) - (i % 3) * 997 + if i % 7 == 0 { 0 } else { 13 };
+            times.push(t - t.rem_euclid(hour) * i64::from(i % 7 == 0));
+            if i % 250 == 0 {
+                times.push(t + 400 * hour); // a time jump, rejected
+                times.push(t - 3 * hour); // late once its window is closed
+            }
+        }
+        let (mut accepted, mut refused) = (0, 0);
+        for t in times {
+            match engine.accept(Millis(t)) {
+                Some(w) => {
+                    assert_eq!(w, t.div_euclid(hour), "time {t}");
+                    accepted += 1;
+                }
+                None => refused += 1,
+            }
+        }
+        assert!(
+            accepted > 1900 && refused > 4,
+            "{accepted} accepted, {refused} refused"
+        );
     }
 
     /// A seeded engine for `cfg` that keeps the exact leaves (`truth`).
