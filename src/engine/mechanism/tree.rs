@@ -91,8 +91,10 @@ impl TreeMechanism {
             max_trailing,
             node_var,
             n_leaves: 0,
-            stores: vec![LevelStore::default(); h],
-            pending_sums: vec![None; h],
+            // Built, not cloned: `vec![store; h]` clones the store's `VecDeque` h − 1 times,
+            // which was 7% of closing an epoch's first window of 100,000 groups (issue 9).
+            stores: (0..h).map(|_| LevelStore::default()).collect(),
+            pending_sums: (0..h).map(|_| None).collect(),
         }
     }
 
