@@ -12,7 +12,10 @@
 //! `--fast` parses with [`LineParser::parse_with_shape`] instead (what `scrim replay` does:
 //! the fast path, and lines laid out like the ones before them read along their learned
 //! [`LineShape`](scrim::engine::event::LineShape)), so the two rates can be printed side by
-//! side. `--no-shape` makes it [`LineParser::parse`] (the fast path alone).
+//! side. `--no-shape` makes it [`LineParser::parse`] (the fast path alone). Each line is
+//! handed over as bytes and checked for UTF-8 on its own; `scrim replay` checks whole
+//! chunks at once and hands their lines over as text
+//! ([`RawLine::Text`](scrim::engine::event::RawLine)), which is a little cheaper.
 //!
 //! The parser needs a function that maps a raw unit id to a `u64`. By default the floor
 //! uses 64-bit FNV-1a (a few cycles per byte, not keyed), because the keyed hash scrim
