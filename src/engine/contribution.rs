@@ -341,6 +341,19 @@ impl Contributor {
 /// A window aggregate: `[stat][component]` → flat `groups × dim` values.
 type Aggregate = Vec<Vec<Vec<i128>>>;
 
+/// The empty window aggregate of `plan`: per statistic and component, `groups × dim` zeros.
+pub fn zero_aggregate(plan: &Plan) -> Vec<Vec<Vec<i128>>> {
+    plan.stats
+        .iter()
+        .map(|s| {
+            s.components
+                .iter()
+                .map(|c| vec![0i128; s.groups.len() * c.dim])
+                .collect()
+        })
+        .collect()
+}
+
 /// The contributions of a closed window's survivors, shared with threads that offer help
 /// between their own jobs (the replay's parse workers, through a [`HelpBoard`]): the
 /// engine thread and the helpers take blocks of 1,024 events from an atomic
@@ -719,18 +732,6 @@ mod tests {
                     .iter()
                     .map(|_| (next() % 4001) as f64 * 0.37 - 200.0)
                     .collect(),
-            })
-            .collect()
-    }
-
-    fn zero_aggregate(plan: &Plan) -> Vec<Vec<Vec<i128>>> {
-        plan.stats
-            .iter()
-            .map(|s| {
-                s.components
-                    .iter()
-                    .map(|comp| vec![0i128; s.groups.len() * comp.dim])
-                    .collect()
             })
             .collect()
     }

@@ -1009,16 +1009,7 @@ fn priority_input(unit: u64, ev: &Event) -> PriorityInput {
 impl WindowAgg {
     fn empty(plan: &Plan) -> WindowAgg {
         WindowAgg {
-            values: plan
-                .stats
-                .iter()
-                .map(|s| {
-                    s.components
-                        .iter()
-                        .map(|c| vec![0i128; s.groups.len() * c.dim])
-                        .collect()
-                })
-                .collect(),
+            values: crate::engine::contribution::zero_aggregate(plan),
         }
     }
 }

@@ -851,17 +851,7 @@ mod tests {
         let events: Vec<_> = expected.iter().filter_map(|p| p.event().cloned()).collect();
         assert!(events.len() > 5_000, "{} events", events.len());
         let kept: Vec<bool> = (0..events.len()).map(|i| i % 3 != 0).collect();
-        let zero = || -> Vec<Vec<Vec<i128>>> {
-            plan.stats
-                .iter()
-                .map(|s| {
-                    s.components
-                        .iter()
-                        .map(|c| vec![0i128; s.groups.len() * c.dim])
-                        .collect()
-                })
-                .collect()
-        };
+        let zero = || crate::engine::contribution::zero_aggregate(&plan);
         let mut want = zero();
         contributor.add_kept(&events, &kept, &mut want, 1);
         for threads in [2, 3] {
