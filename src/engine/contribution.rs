@@ -267,7 +267,12 @@ impl Contributor {
     /// than [`BLOCK_SLOTS`] slots (many groups: zeroing and adding back the partial sums
     /// would cost more than they save) take `add_event` itself.
     fn add_block(&self, events: &[Event], kept: &[bool], aggregate: &mut [Vec<Vec<i128>>]) {
-        debug_assert!(events.len() <= PARALLEL_BLOCK);
+        // The i64 partial sums are exact for at most PARALLEL_BLOCK events (see above).
+        assert!(
+            events.len() <= PARALLEL_BLOCK,
+            "a block of {} events",
+            events.len()
+        );
         let slots: usize = aggregate.iter().flatten().map(Vec::len).sum();
         if !self.small || self.width > INLINE_VALUES || slots > BLOCK_SLOTS {
             for (ev, _) in events.iter().zip(kept).filter(|(_, k)| **k) {
@@ -486,7 +491,7 @@ fn take_blocks(
             return taken;
         }
         let range = b * PARALLEL_BLOCK..((b + 1) * PARALLEL_BLOCK).min(events.len());
-        contributor.add_kept(&events[range.clone()], &kept[range], into, 1);
+        contributor.add_block(&events[range.clone()], &kept[range], into);
         taken += 1;
     }
 }
